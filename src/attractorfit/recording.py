@@ -1,0 +1,367 @@
+"""The :class:`Recording`: spike trains, trials and provenance, as every stage sees them.
+
+Inside attractorfit times are float64 seconds; neo/quantities objects appear only in
+:meth:`Recording.to_neo` and :meth:`Recording.from_neo`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from attractorfit._validation import check_spike_times, check_trials, warn_input
+from attractorfit.errors import InputError
+
+__all__ = ["Recording", "file_provenance"]
+
+#: Inter-spike intervals shorter than this count as refractory violations
+#: (common practice for single-unit contamination estimates).
+REFRACTORY_S = 0.0015
+
+
+def file_provenance(path) -> dict:
+    """Path, size in bytes and SHA-256 of one input file (read in chunks, read-only)."""
+    path = os.fspath(path)
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(chunk)
+    return {"path": path, "size": os.path.getsize(path), "sha256": digest.hexdigest()}
+
+
+@dataclass
+class Recording:
+    """Spike trains of simultaneously recorded units, with an optional trials table.
+
+    Parameters
+    ----------
+    unit_ids : list of str
+        One id per unit, unique.
+    spike_times : list of ndarray
+        Spike times of each unit in seconds (float64, sorted, finite, >= 0).
+    trials : dict of str to ndarray, optional
+        Trials table as columns of equal length, sorted by ``start``. ``start`` and
+        ``stop`` (seconds) are required; every other column is a label (e.g. the
+        remembered item, the outcome). ``None`` for a recording without trials.
+    metadata : dict
+        Free-form description (session, subject, sampling rate...).
+    provenance : list of dict
+        One record per file read: ``path``, ``size``, ``sha256``.
+    warnings : list of str
+        Warnings about the input, collected by the loaders and by :meth:`validate`.
+
+    Notes
+    -----
+    Build instances with :meth:`from_arrays` (or a loader), which validates; the
+    constructor itself trusts its arguments.
+    """
+
+    unit_ids: list
+    spike_times: list
+    trials: dict | None = None
+    metadata: dict = field(default_factory=dict)
+    provenance: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)
+
+    # ------------------------------------------------------------------ shape
+    @property
+    def n_units(self) -> int:
+        return len(self.unit_ids)
+
+    @property
+    def n_trials(self) -> int:
+        return 0 if self.trials is None else int(len(self.trials["start"]))
+
+    @property
+    def n_spikes(self) -> int:
+        return int(sum(len(t) for t in self.spike_times))
+
+    @property
+    def label_columns(self) -> list:
+        """Names of the trial label columns (everything but start and stop)."""
+        if self.trials is None:
+            return []
+        return [c for c in self.trials if c not in ("start", "stop")]
+
+    @property
+    def t_start(self) -> float:
+        """Start of the recording: metadata ``t_start``, else 0."""
+        return float(self.metadata.get("t_start", 0.0))
+
+    @property
+    def t_stop(self) -> float:
+        """End of the recording: the last spike or trial stop (or metadata ``t_stop``)."""
+        ends = [float(t[-1]) for t in self.spike_times if len(t)]
+        if self.trials is not None and self.n_trials:
+            ends.append(float(np.max(self.trials["stop"])))
+        if "t_stop" in self.metadata:
+            ends.append(float(self.metadata["t_stop"]))
+        return max(ends) if ends else 0.0
+
+    @property
+    def duration(self) -> float:
+        return self.t_stop - self.t_start
+
+    @property
+    def source(self) -> str:
+        """Name of the first input file, for messages."""
+        if self.provenance:
+            return os.path.basename(self.provenance[0]["path"])
+        return self.metadata.get("source", "<recording>")
+
+    # ----------------------------------------------------------- construction
+    @classmethod
+    def from_arrays(cls, spike_times, spike_units, *, trials=None, unit_ids=None,
+                    metadata=None, provenance=None, source="<arrays>", min_units=2):
+        """Build and validate a Recording from flat arrays.
+
+        Parameters
+        ----------
+        spike_times : array_like of float
+            All spike times in seconds.
+        spike_units : array_like
+            The unit of each spike (any hashable labels; converted to str).
+        trials : dict, optional
+            Columns of a trials table; ``start`` and ``stop`` required.
+        unit_ids : sequence, optional
+            Units to include, in this order (units without spikes allowed). Default:
+            the sorted distinct labels of ``spike_units``.
+        metadata, provenance : optional
+            Stored as given.
+        source : str
+            File name used in error messages.
+        min_units : int
+            Fewest units accepted.
+
+        Returns
+        -------
+        Recording
+
+        Raises
+        ------
+        InputError
+            Mismatched lengths, non-finite or negative times, bad trials, too few
+            units or no spikes at all.
+        """
+        times = np.asarray(spike_times, dtype=np.float64).ravel()
+        labels = np.asarray(spike_units).ravel()
+        if times.shape != labels.shape:
+            raise InputError(f"{source}: {times.size} spike times but {labels.size} unit "
+                             "labels; expected one unit label per spike")
+        labels = labels.astype(str)
+        if unit_ids is None:
+            unit_ids = _natural_sort(np.unique(labels).tolist())
+        unit_ids = [str(u) for u in unit_ids]
+        if len(set(unit_ids)) != len(unit_ids):
+            dup = next(u for u in unit_ids if unit_ids.count(u) > 1)
+            raise InputError(f"{source}: unit id {dup!r} appears more than once; expected "
+                             "unique unit ids")
+        index = {u: i for i, u in enumerate(unit_ids)}
+        codes = np.fromiter((index.get(u, -1) for u in labels), dtype=np.int64,
+                            count=labels.size)
+        order = np.lexsort((times, codes))  # by unit, then time: flat tables need not be sorted
+        bounds = np.searchsorted(codes[order], np.arange(len(unit_ids) + 1))
+        trains = [times[order[bounds[k]:bounds[k + 1]]] for k in range(len(unit_ids))]
+        rec = cls(unit_ids=unit_ids, spike_times=trains, trials=trials,
+                  metadata=dict(metadata or {}), provenance=list(provenance or []))
+        rec.metadata.setdefault("source", source)
+        return rec.validate(min_units=min_units)
+
+    def validate(self, *, min_units: int = 2) -> "Recording":
+        """Check the recording in place and collect warnings; return ``self``.
+
+        Raises
+        ------
+        InputError
+            Fewer than ``min_units`` units, no spikes, duplicate unit ids, bad spike
+            times (non-finite, negative) or bad trials (stop <= start, overlap).
+        """
+        src = self.source
+        if len(set(self.unit_ids)) != len(self.unit_ids):
+            seen = set()
+            dup = next(u for u in self.unit_ids if u in seen or seen.add(u))
+            raise InputError(f"{src}: unit id {dup!r} appears more than once; expected "
+                             "unique unit ids")
+        if self.n_units < min_units:
+            raise InputError(f"{src}: found {self.n_units} unit(s); expected at least "
+                             f"{min_units} simultaneously recorded units")
+        self.spike_times = [check_spike_times(t, source=src, unit=u)
+                            for u, t in zip(self.unit_ids, self.spike_times)]
+        if self.n_spikes == 0:
+            raise InputError(f"{src}: the recording contains no spikes; expected spike "
+                             "times for at least one unit")
+        if self.trials is not None:
+            self.trials = _check_trial_table(self.trials, src)
+        self.warnings = list(dict.fromkeys(self.warnings + self._quality_warnings()))
+        return self
+
+    def _quality_warnings(self, *, min_spikes: int = 20) -> list:
+        src = self.source
+        out = []
+        tmax = max((float(t[-1]) for t in self.spike_times if len(t)), default=0.0)
+        isis = [np.diff(t) for t in self.spike_times if len(t) > 1]
+        med_isi = float(np.median(np.concatenate(isis))) if isis else np.inf
+        if tmax > 1e4 and med_isi > 1.0:
+            out.append(f"{src}: spike times reach {tmax:g} with a median inter-spike "
+                       f"interval of {med_isi:g}; they look like milliseconds, expected "
+                       "seconds (use the milliseconds option of the loader)")
+        few = [u for u, t in zip(self.unit_ids, self.spike_times) if len(t) < min_spikes]
+        if few:
+            out.append(f"{src}: {len(few)} unit(s) have fewer than {min_spikes} spikes "
+                       f"(first: {few[0]!r})")
+        dup_units = [u for u, t in zip(self.unit_ids, self.spike_times)
+                     if len(t) > 1 and np.any(np.diff(t) == 0)]
+        if dup_units:
+            out.append(f"{src}: {len(dup_units)} unit(s) have duplicated spike times "
+                       f"(first: {dup_units[0]!r})")
+        contaminated = [u for u, t in zip(self.unit_ids, self.spike_times)
+                        if len(t) > 1 and np.mean(np.diff(t) < REFRACTORY_S) > 0.01]
+        if contaminated:
+            out.append(f"{src}: {len(contaminated)} unit(s) have more than 1% of "
+                       f"inter-spike intervals under {REFRACTORY_S * 1e3:g} ms, a sign of "
+                       f"multi-unit activity or contamination (first: {contaminated[0]!r})")
+        if self.trials is not None and self.n_trials:
+            start, stop = self.trials["start"], self.trials["stop"]
+            outside = 0
+            for t in self.spike_times:
+                k = np.searchsorted(start, t, side="right") - 1
+                inside = (k >= 0) & (t < stop[np.clip(k, 0, None)])
+                outside += int(np.sum(~inside))
+            if outside:
+                out.append(f"{src}: {outside} of {self.n_spikes} spikes fall outside all "
+                           "trials")
+        return out
+
+    # -------------------------------------------------------------- selection
+    def select_units(self, keep) -> "Recording":
+        """A new Recording with only the units at indices (or boolean mask) ``keep``."""
+        idx = np.arange(self.n_units)[np.asarray(keep)]
+        return replace(self, unit_ids=[self.unit_ids[i] for i in idx],
+                       spike_times=[self.spike_times[i] for i in idx],
+                       metadata=dict(self.metadata), warnings=list(self.warnings))
+
+    def trial_spikes(self, trial: int) -> list:
+        """Spike times of each unit in ``trial``, relative to the trial start."""
+        if self.trials is None:
+            raise InputError(f"{self.source}: the recording has no trials table")
+        t0, t1 = float(self.trials["start"][trial]), float(self.trials["stop"][trial])
+        out = []
+        for t in self.spike_times:
+            a, b = np.searchsorted(t, [t0, t1])
+            out.append(t[a:b] - t0)
+        return out
+
+    # -------------------------------------------------------------------- neo
+    def to_neo(self):
+        """Convert to a ``neo.Block`` with one Segment holding every SpikeTrain.
+
+        Trials become an ``Epoch`` named ``trials`` whose array annotations carry the
+        label columns; unit ids are SpikeTrain names.
+        """
+        import neo
+        import quantities as pq
+
+        t_stop = self.t_stop + 1e-9
+        block = neo.Block(name=self.metadata.get("session", "recording"))
+        seg = neo.Segment(name="recording")
+        block.segments.append(seg)
+        for uid, t in zip(self.unit_ids, self.spike_times):
+            seg.spiketrains.append(neo.SpikeTrain(np.asarray(t) * pq.s, t_stop=t_stop * pq.s,
+                                                  t_start=min(self.t_start, 0.0) * pq.s,
+                                                  name=str(uid)))
+        if self.trials is not None and self.n_trials:
+            start, stop = self.trials["start"], self.trials["stop"]
+            ann = {c: np.asarray(self.trials[c]) for c in self.label_columns}
+            seg.epochs.append(neo.Epoch(times=start * pq.s, durations=(stop - start) * pq.s,
+                                        labels=np.array([f"trial {i}" for i in
+                                                         range(self.n_trials)]),
+                                        name="trials", array_annotations=ann))
+        return block
+
+    @classmethod
+    def from_neo(cls, block, *, source="<neo>", provenance=None, metadata=None):
+        """Build a Recording from a ``neo.Block``.
+
+        SpikeTrains with the same name (or ``unit_id``/``cluster_id`` annotation) across
+        segments are one unit. Trials come from an Epoch named ``trials`` (label columns
+        from its array annotations); without one, each Segment of a multi-segment block
+        becomes a trial.
+        """
+        import quantities as pq
+
+        per_unit: dict = {}
+        trials = None
+        seg_bounds = []
+        for seg_i, seg in enumerate(block.segments):
+            for k, st in enumerate(seg.spiketrains):
+                uid = _neo_unit_id(st, k)
+                per_unit.setdefault(uid, []).append(
+                    np.asarray(st.times.rescale(pq.s).magnitude, dtype=np.float64))
+            if len(seg.spiketrains):
+                t0 = float(seg.spiketrains[0].t_start.rescale(pq.s).magnitude)
+                t1 = float(seg.spiketrains[0].t_stop.rescale(pq.s).magnitude)
+            else:
+                t0 = t1 = np.nan
+            seg_bounds.append((t0, t1))
+            for ep in seg.epochs:
+                if (ep.name or "").lower() == "trials" and trials is None:
+                    start = np.asarray(ep.times.rescale(pq.s).magnitude, dtype=np.float64)
+                    dur = np.asarray(ep.durations.rescale(pq.s).magnitude, dtype=np.float64)
+                    trials = {"start": start, "stop": start + dur}
+                    for name, vals in (ep.array_annotations or {}).items():
+                        trials[str(name)] = np.asarray(vals)
+        if trials is None and len(block.segments) > 1:
+            b = np.array(seg_bounds, dtype=np.float64)
+            if np.all(np.isfinite(b)):
+                trials = {"start": b[:, 0], "stop": b[:, 1],
+                          "segment": np.arange(len(b))}
+        unit_ids = _natural_sort(list(per_unit))
+        times = [np.concatenate(per_unit[u]) if per_unit[u] else np.zeros(0)
+                 for u in unit_ids]
+        rec = cls(unit_ids=unit_ids, spike_times=[np.sort(t) for t in times], trials=trials,
+                  metadata=dict(metadata or {}), provenance=list(provenance or []))
+        rec.metadata.setdefault("source", source)
+        return rec.validate()
+
+    def __repr__(self) -> str:  # short: never dump arrays
+        return (f"Recording({self.n_units} units, {self.n_spikes} spikes, "
+                f"{self.n_trials} trials, {self.duration:.1f} s, source={self.source!r})")
+
+
+def _neo_unit_id(st, k) -> str:
+    ann = getattr(st, "annotations", {}) or {}
+    for key in ("unit_id", "cluster_id", "unit_name"):
+        if key in ann:
+            return str(ann[key])
+    return str(st.name) if st.name not in (None, "") else str(k)
+
+
+def _natural_sort(labels: list) -> list:
+    """Sort unit labels numerically when they all look like integers."""
+    try:
+        return sorted(labels, key=lambda s: (int(s), s))
+    except (TypeError, ValueError):
+        return sorted(labels)
+
+
+def _check_trial_table(trials: dict, src: str) -> dict:
+    if "start" not in trials or "stop" not in trials:
+        missing = [c for c in ("start", "stop") if c not in trials]
+        raise InputError(f"{src}: trials table lacks column(s) {missing}; expected 'start' "
+                         "and 'stop' in seconds")
+    n = len(np.asarray(trials["start"]).ravel())
+    for name, col in trials.items():
+        if len(np.asarray(col).ravel()) != n:
+            raise InputError(f"{src}: trials column {name!r} has {len(col)} rows; expected "
+                             f"{n} like 'start'")
+    if n == 0:
+        raise InputError(f"{src}: the trials table is empty; expected at least one trial")
+    start, stop, order = check_trials(trials["start"], trials["stop"], source=src)
+    out = {"start": start, "stop": stop}
+    for name, col in trials.items():
+        if name not in ("start", "stop"):
+            out[str(name)] = np.asarray(col).ravel()[order]
+    return out
