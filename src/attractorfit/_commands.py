@@ -2,21 +2,109 @@
 
 from __future__ import annotations
 
+import json
+import sys
+
 
 def register(sub) -> None:
     """Add every sub-command to the argparse sub-parser collection ``sub``."""
-    p = sub.add_parser("inspect", help="summarise a recording: units, rates, trials, warnings",
-                       description="Load a recording and print per-unit and per-recording "
-                                   "statistics and any warnings about the input.")
-    p.add_argument("path", help="recording file or sorter folder")
-    p.add_argument("--trials", help="trials table (CSV/TSV) when it is a separate file")
-    p.add_argument("--json", action="store_true", help="print JSON instead of plain text")
+    p = sub.add_parser(
+        "inspect", help="summarise a recording: units, rates, variability, trials, warnings",
+        description="Load a recording and print, per unit, the spike count, mean rate, "
+                    "ISI coefficient of variation, Fano factor of whole-trial counts and "
+                    "the fraction of inter-spike intervals under 1.5 ms; per recording, "
+                    "its duration, trials and label levels, and any warnings about the "
+                    "input. Nothing is written.")
+    _add_load_options(p)
+    p.add_argument("--json", action="store_true",
+                   help="print one JSON document instead of plain text")
     p.set_defaults(func=_inspect)
 
 
-def _inspect(args) -> int:
+def _add_load_options(p) -> None:
+    p.add_argument("path", help="recording: an NWB, NIX, CSV/TSV or NPZ file, a sorter "
+                                "output folder, or any file neo can read")
+    p.add_argument("--trials", metavar="CSV",
+                   help="trials table (CSV/TSV with start and stop in seconds plus label "
+                        "columns) when the trials are not inside the recording file")
+    p.add_argument("--time-unit", choices=["s", "ms"], default=None,
+                   help="unit of the spike times in a CSV/TSV table (default: seconds)")
+    p.add_argument("--sampling-rate", type=float, default=None, metavar="HZ",
+                   help="sampling rate of a sorter folder's spike_times.npy when its "
+                        "params.py does not give it")
+    p.add_argument("--good-only", action="store_true",
+                   help="sorter folders: keep only units labelled good")
+
+
+def load_from_args(args):
+    """Load the recording named on the command line with its loader options."""
     from attractorfit.io import load
 
-    rec = load(args.path, trials=args.trials)
-    print(rec)
+    options = {}
+    if getattr(args, "trials", None):
+        options["trials"] = args.trials
+    if getattr(args, "time_unit", None):
+        options["time_unit"] = args.time_unit
+    if getattr(args, "sampling_rate", None):
+        options["sampling_rate"] = args.sampling_rate
+    if getattr(args, "good_only", False):
+        options["good_only"] = True
+    return load(args.path, **options)
+
+
+def _inspect(args) -> int:
+    from attractorfit._output import to_jsonable
+    from attractorfit.stats import unit_summary
+
+    rec = load_from_args(args)
+    s = unit_summary(rec)
+    info = {
+        "source": rec.source,
+        "n_units": rec.n_units,
+        "n_spikes": rec.n_spikes,
+        "duration_s": rec.duration,
+        "n_trials": rec.n_trials,
+        "trial_columns": {c: _levels(rec.trials[c]) for c in rec.label_columns},
+        "units": [
+            {"unit": u, "n_spikes": int(n), "rate_hz": r, "isi_cv": cv, "fano": f,
+             "isi_under_1.5ms": c}
+            for u, n, r, cv, f, c in zip(s.unit_ids, s.n_spikes, s.rate_hz, s.isi_cv,
+                                         s.fano, s.contamination)],
+        "warnings": list(rec.warnings),
+    }
+    if args.json:
+        print(json.dumps(to_jsonable(info), indent=2))
+        return 0
+    out = sys.stdout
+    out.write(f"recording   {info['source']}\n")
+    out.write(f"units       {rec.n_units}   spikes {rec.n_spikes}   duration "
+              f"{rec.duration:.1f} s\n")
+    if rec.n_trials:
+        dur = rec.trials["stop"] - rec.trials["start"]
+        out.write(f"trials      {rec.n_trials}   length {dur.min():.3g}-{dur.max():.3g} s\n")
+        for c, lv in info["trial_columns"].items():
+            out.write(f"  {c:<12}{lv}\n")
+    else:
+        out.write("trials      none (will be analysed as one continuous epoch)\n")
+    out.write("\n unit          spikes   rate_Hz   ISI_CV   Fano   ISI<1.5ms\n")
+    for row in info["units"]:
+        out.write(f" {row['unit']:<12} {row['n_spikes']:>7} {row['rate_hz']:>9.2f} "
+                  f"{row['isi_cv']:>8.2f} {row['fano']:>6.2f} {row['isi_under_1.5ms']:>10.2%}\n")
+    if rec.warnings:
+        out.write("\nwarnings\n")
+        for w in rec.warnings:
+            out.write(f"  - {w}\n")
     return 0
+
+
+def _levels(col) -> str:
+    import numpy as np
+
+    col = np.asarray(col)
+    if col.dtype.kind in "fc":
+        if np.all(np.isfinite(col)) and np.unique(col).size > 12:
+            return f"numeric, {np.nanmin(col):g} to {np.nanmax(col):g}"
+    vals, counts = np.unique(col.astype(str), return_counts=True)
+    if vals.size > 12:
+        return f"{vals.size} distinct values"
+    return ", ".join(f"{v} ({c})" for v, c in zip(vals, counts))

@@ -1,0 +1,181 @@
+"""One TOML configuration for the whole run, with documented defaults.
+
+Every parameter of every stage lives in :data:`PARAMETERS` (section -> key ->
+:class:`Param`). ``attractorfit defaults`` prints them as a commented TOML file;
+``run --config FILE`` reads a file that overrides any subset; the resolved
+configuration is saved in the run folder as ``config.toml``.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tomllib
+from dataclasses import dataclass
+from typing import Any, Callable
+
+from attractorfit.errors import InputError
+
+__all__ = ["Param", "PARAMETERS", "default_config", "load_config", "resolve_config",
+           "dumps_config"]
+
+
+@dataclass(frozen=True)
+class Param:
+    """One configuration parameter: default value, meaning, and a check."""
+
+    default: Any
+    doc: str
+    check: Callable[[Any], bool] | None = None
+    rule: str = ""
+
+
+def _num(lo=None, hi=None, *, lo_open=False, integer=False):
+    def ok(v):
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            return False
+        if integer and not float(v).is_integer():
+            return False
+        if not math.isfinite(float(v)):
+            return False
+        if lo is not None and (v <= lo if lo_open else v < lo):
+            return False
+        return hi is None or v <= hi
+    return ok
+
+
+def _choice(*opts):
+    return lambda v: v in opts
+
+
+def _window(v):
+    return isinstance(v, list) and (len(v) == 0 or (
+        len(v) == 2 and all(_num()(x) for x in v) and v[1] > v[0]))
+
+
+PARAMETERS: dict[str, dict[str, Param]] = {
+    "analysis": {
+        "bin_size": Param(0.05, "width of the count bins, seconds", _num(0, 10, lo_open=True),
+                          "a number of seconds > 0 and <= 10"),
+        "align": Param("", "trials-table column the analysis window is relative to "
+                           "(e.g. 'delay_start'); empty: the trial start", lambda v: isinstance(v, str),
+                       "a column name or ''"),
+        "window": Param([], "analysis window [start, stop] in seconds relative to 'align'; "
+                            "empty: the whole trial", _window,
+                        "[] or [start, stop] with stop > start"),
+        "min_rate_hz": Param(0.5, "units slower than this inside the windows are left out, Hz",
+                             _num(0), "a number >= 0"),
+        "continuous_window_s": Param(10.0, "window length standing in for trials when the "
+                                           "recording has none, seconds",
+                                     _num(0, lo_open=True), "a number > 0"),
+    },
+    "states": {
+        "n_states": Param(0, "number of states; 0 chooses it from the data",
+                          _num(0, 64, integer=True), "0 or a whole number from 2 to 64"),
+        "min_states": Param(1, "smallest state number considered when choosing",
+                            _num(1, 64, integer=True), "a whole number >= 1"),
+        "max_states": Param(8, "largest state number considered when choosing",
+                            _num(2, 64, integer=True), "a whole number from 2 to 64"),
+        "posterior_threshold": Param(0.8, "a bin is assigned to a state when its posterior "
+                                          "exceeds this", _num(0.5, 1.0, lo_open=True),
+                                     "a number in (0.5, 1]"),
+        "min_segment_s": Param(0.05, "state segments shorter than this are left unassigned, "
+                                     "seconds", _num(0), "a number >= 0"),
+    },
+    "discreteness": {
+        "n_boot": Param(99, "bootstrap replicates of the continuous-latent null",
+                        _num(1, 100000, integer=True), "a whole number >= 1"),
+        "alpha": Param(0.05, "significance level of the verdict", _num(0, 0.5, lo_open=True),
+                       "a number in (0, 0.5]"),
+    },
+    "run": {
+        "seed": Param(0, "seed of every random stream of the run", _num(0, 2**63 - 1, integer=True),
+                      "a whole number >= 0"),
+    },
+}
+
+
+def default_config() -> dict:
+    """The default configuration as a nested dict (a fresh copy)."""
+    return {s: {k: _copy(p.default) for k, p in sec.items()} for s, sec in PARAMETERS.items()}
+
+
+def _copy(v):
+    return list(v) if isinstance(v, list) else v
+
+
+def resolve_config(overrides: dict | None, *, source: str = "configuration") -> dict:
+    """Defaults updated with ``overrides``; unknown keys and bad values raise InputError."""
+    cfg = default_config()
+    for section, values in (overrides or {}).items():
+        if section not in PARAMETERS:
+            raise InputError(f"{source}: unknown section [{section}]; expected one of "
+                             f"{sorted(PARAMETERS)}")
+        if not isinstance(values, dict):
+            raise InputError(f"{source}: [{section}] must be a table of settings")
+        for key, value in values.items():
+            p = PARAMETERS[section].get(key)
+            if p is None:
+                raise InputError(f"{source}: unknown setting {section}.{key}; expected one of "
+                                 f"{sorted(PARAMETERS[section])}")
+            if isinstance(p.default, float) and isinstance(value, int) and not isinstance(value, bool):
+                value = float(value)
+            if p.check is not None and not p.check(value):
+                raise InputError(f"{source}: {section}.{key} = {value!r}; expected {p.rule}")
+            cfg[section][key] = value
+    st = cfg["states"]
+    if st["min_states"] > st["max_states"]:
+        raise InputError(f"{source}: states.min_states = {st['min_states']} is larger than "
+                         f"states.max_states = {st['max_states']}")
+    if st["n_states"] == 1:
+        raise InputError(f"{source}: states.n_states = 1; expected 0 (choose) or at least 2 "
+                         "states")
+    return cfg
+
+
+def load_config(path) -> dict:
+    """Read a TOML file and resolve it against the defaults.
+
+    Raises
+    ------
+    InputError
+        Missing or unreadable file, invalid TOML, unknown keys, values out of range.
+    """
+    path = os.fspath(path)
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(f"{path}: configuration file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path}: cannot read the configuration ({exc})") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{path}: not valid TOML ({exc})") from None
+    return resolve_config(data, source=os.path.basename(path))
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, float):
+        return repr(v)
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    return str(v)
+
+
+def dumps_config(cfg: dict | None = None, *, comments: bool = True) -> str:
+    """TOML text of ``cfg`` (default: the defaults), each key with its meaning."""
+    cfg = default_config() if cfg is None else cfg
+    lines = ["# attractorfit configuration. Every key is optional; missing keys take the",
+             "# defaults shown here."] if comments else []
+    for section, sec in PARAMETERS.items():
+        lines.append("")
+        lines.append(f"[{section}]")
+        for key, p in sec.items():
+            if comments:
+                lines.append(f"# {p.doc}" + (f" ({p.rule})" if p.rule else ""))
+            lines.append(f"{key} = {_toml_value(cfg[section][key])}")
+    return "\n".join(lines).lstrip("\n") + "\n"
