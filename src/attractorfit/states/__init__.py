@@ -4,4 +4,8 @@ state model, vertex codes, occupancy and dwell times, and the discreteness test.
 Stage 3 of the flow (binning -> latent/**states** -> network/fit).
 """
 
-__all__: list = []
+from attractorfit.states._hmm import PoissonHMM
+
+__all__ = [
+    "PoissonHMM",
+]
