@@ -123,31 +123,40 @@ def check_spike_times(times, *, source: str, unit: str) -> np.ndarray:
     return arr
 
 
-def check_trials(start, stop, *, source: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def check_trials(start, stop, *, source: str,
+                 row_labels=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Validate trial start/stop times; return (start, stop, order) sorted by start.
 
     Raises InputError for non-finite or negative times, stop <= start, and overlapping
-    trials. Trials given out of order are sorted with a warning.
+    trials. Trials given out of order are sorted with a warning. ``row_labels``
+    (optional, one text per trial, e.g. ``"line 4"``) names the rows in messages as
+    ``"<source> line 4: ..."``; by default rows are ``"<source>: trial <i>: ..."``.
     """
     start = np.asarray(start, dtype=np.float64).ravel()
     stop = np.asarray(stop, dtype=np.float64).ravel()
     if start.shape != stop.shape:
         raise InputError(f"{source}: trials table has {start.size} start times but "
                          f"{stop.size} stop times")
+
+    def row(i):
+        if row_labels is None:
+            return f"{source}: trial {i}"
+        return f"{source} {row_labels[i]}"
+
     for name, col in (("start", start), ("stop", stop)):
         bad = ~np.isfinite(col)
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
-            raise InputError(f"{source}: trial {i}: {name} {col[i]!r} is not a finite number "
+            raise InputError(f"{row(i)}: {name} {col[i]!r} is not a finite number "
                              "of seconds")
         if col.size and col.min() < 0:
             i = int(np.argmin(col))
-            raise InputError(f"{source}: trial {i}: {name} {col[i]!r} is negative; expected "
+            raise InputError(f"{row(i)}: {name} {col[i]!r} is negative; expected "
                              "seconds >= 0")
     bad = stop <= start
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
-        raise InputError(f"{source}: trial {i}: stop {stop[i]!r} is not after start "
+        raise InputError(f"{row(i)}: stop {stop[i]!r} is not after start "
                          f"{start[i]!r}; expected stop > start")
     order = np.argsort(start, kind="stable")
     if np.any(order != np.arange(order.size)):
@@ -156,7 +165,12 @@ def check_trials(start, stop, *, source: str) -> tuple[np.ndarray, np.ndarray, n
     overlap = s[1:] < e[:-1]
     if overlap.any():
         i = int(np.flatnonzero(overlap)[0])
-        raise InputError(f"{source}: trials {int(order[i])} ({s[i]:g}-{e[i]:g} s) and "
-                         f"{int(order[i + 1])} ({s[i + 1]:g}-{e[i + 1]:g} s) overlap; "
+        a, b = int(order[i]), int(order[i + 1])
+        if row_labels is None:
+            names = f"{source}: trials {a} ({s[i]:g}-{e[i]:g} s) and {b}"
+        else:
+            names = (f"{source}: trials at {row_labels[a]} ({s[i]:g}-{e[i]:g} s) and "
+                     f"{row_labels[b]}")
+        raise InputError(f"{names} ({s[i + 1]:g}-{e[i + 1]:g} s) overlap; "
                          "expected disjoint trials")
     return s, e, order

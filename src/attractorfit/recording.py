@@ -282,13 +282,15 @@ class Recording:
         return block
 
     @classmethod
-    def from_neo(cls, block, *, source="<neo>", provenance=None, metadata=None):
+    def from_neo(cls, block, *, source="<neo>", provenance=None, metadata=None,
+                 validate=True):
         """Build a Recording from a ``neo.Block``.
 
         SpikeTrains with the same name (or ``unit_id``/``cluster_id`` annotation) across
         segments are one unit. Trials come from an Epoch named ``trials`` (label columns
         from its array annotations); without one, each Segment of a multi-segment block
-        becomes a trial.
+        becomes a trial. With ``validate=False`` the result is returned unchecked, for a
+        caller that changes it (e.g. replaces the trials) and then calls :meth:`validate`.
         """
         import quantities as pq
 
@@ -324,7 +326,7 @@ class Recording:
         rec = cls(unit_ids=unit_ids, spike_times=[np.sort(t) for t in times], trials=trials,
                   metadata=dict(metadata or {}), provenance=list(provenance or []))
         rec.metadata.setdefault("source", source)
-        return rec.validate()
+        return rec.validate() if validate else rec
 
     def __repr__(self) -> str:  # short: never dump arrays
         return (f"Recording({self.n_units} units, {self.n_spikes} spikes, "
