@@ -5,7 +5,13 @@ Stage 3 of the flow (binning -> latent/**states** -> network/fit).
 """
 
 from attractorfit.states._hmm import PoissonHMM
+from attractorfit.states._feature import (BinaryFeatureHMM, CubeComparison,
+                                          compare_cube_vs_free, vertex_codes)
 
 __all__ = [
     "PoissonHMM",
+    "BinaryFeatureHMM",
+    "CubeComparison",
+    "compare_cube_vs_free",
+    "vertex_codes",
 ]

@@ -197,6 +197,13 @@ class _CountHMMBase(BaseEstimator):
         log_b = _log_emissions(data, rates)
         return float(forward_loglik(log_b, data.offsets, start, trans))
 
+    def _sequence_logliks(self, data) -> np.ndarray:
+        """Log-likelihood of every sequence of ``data`` separately (array, n_seq)."""
+        start, trans, rates = self._joint_params()
+        log_b = _log_emissions(data, rates)
+        return np.array([forward_loglik(log_b, data.offsets[q:q + 2], start, trans)
+                         for q in range(len(data.seqs))])
+
     def _posteriors(self, data):
         start, trans, rates = self._joint_params()
         log_b = _log_emissions(data, rates)
