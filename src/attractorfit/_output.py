@@ -57,6 +57,7 @@ class atomic_writer:
             self.fh.close()
         finally:
             if exc_type is None:
+                os.chmod(self.tmp, 0o666 & ~_umask())  # as a plain open() would
                 os.replace(self.tmp, self.path)
             else:
                 try:
@@ -64,6 +65,12 @@ class atomic_writer:
                 except FileNotFoundError:
                     pass
         return False
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def atomic_write(path, data) -> None:
