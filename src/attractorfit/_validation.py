@@ -96,7 +96,7 @@ def check_array(name: str, value, *, ndim: int | None = None, finite: bool = Tru
         bad = np.argwhere(~np.isfinite(arr))[0]
         idx = tuple(int(i) for i in bad)
         raise InputError(f"{name}: element {idx if len(idx) > 1 else idx[0]} is "
-                         f"{arr[tuple(bad)]!r}, expected a finite number")
+                         f"{arr[tuple(bad)].item()!r}, expected a finite number")
     return arr
 
 
@@ -111,11 +111,11 @@ def check_spike_times(times, *, source: str, unit: str) -> np.ndarray:
         bad = ~np.isfinite(arr)
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
-            raise InputError(f"{source}: unit {unit!r}: spike time {arr[i]!r} (index {i}) "
+            raise InputError(f"{source}: unit {unit!r}: spike time {arr[i].item()!r} (index {i}) "
                              "is not a finite number of seconds")
         if arr.min() < 0:
             i = int(np.argmin(arr))
-            raise InputError(f"{source}: unit {unit!r}: spike time {arr[i]!r} (index {i}) "
+            raise InputError(f"{source}: unit {unit!r}: spike time {arr[i].item()!r} (index {i}) "
                              "is negative; expected seconds >= 0")
         if np.any(np.diff(arr) < 0):
             warn_input(f"{source}: unit {unit!r}: spike times were not in order; sorted them")
@@ -147,17 +147,17 @@ def check_trials(start, stop, *, source: str,
         bad = ~np.isfinite(col)
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
-            raise InputError(f"{row(i)}: {name} {col[i]!r} is not a finite number "
+            raise InputError(f"{row(i)}: {name} {col[i].item()!r} is not a finite number "
                              "of seconds")
         if col.size and col.min() < 0:
             i = int(np.argmin(col))
-            raise InputError(f"{row(i)}: {name} {col[i]!r} is negative; expected "
+            raise InputError(f"{row(i)}: {name} {col[i].item()!r} is negative; expected "
                              "seconds >= 0")
     bad = stop <= start
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
-        raise InputError(f"{row(i)}: stop {stop[i]!r} is not after start "
-                         f"{start[i]!r}; expected stop > start")
+        raise InputError(f"{row(i)}: stop {stop[i].item()!r} is not after start "
+                         f"{start[i].item()!r}; expected stop > start")
     order = np.argsort(start, kind="stable")
     if np.any(order != np.arange(order.size)):
         warn_input(f"{source}: trials were not in order of start time; sorted them")

@@ -67,24 +67,26 @@ def time_factor(time_unit) -> float:
 
 
 @contextlib.contextmanager
-def library_errors(path, expected: str):
+def library_errors(path, expected: str, *, label: str | None = None):
     """Turn any exception a reading library raises into an InputError.
 
     Use only around calls into third-party readers (h5py, pynwb, neo, numpy's
     format module): their failures on a bad file are bad input, not our bugs. The
-    message names the file, what was expected, and the library's own reason.
+    message starts with ``label`` (default: the file name), names what was
+    expected, and gives the library's own reason.
     """
+    label = label or source_name(path)
     try:
         yield
     except InputError:
         raise
     except MemoryError:
-        raise InputError(f"{source_name(path)}: not enough memory to read the file; "
+        raise InputError(f"{label}: not enough memory to read the file; "
                          f"expected {expected}") from None
     except Exception as exc:  # noqa: BLE001 -- library errors on untrusted files
         reason = str(exc).strip().splitlines()[0][:300] if str(exc).strip() else ""
         kind = type(exc).__name__
-        raise InputError(f"{source_name(path)}: could not read the file as {expected} "
+        raise InputError(f"{label}: could not read the file as {expected} "
                          f"({kind}{': ' + reason if reason else ''})") from None
 
 
@@ -125,7 +127,7 @@ def read_npy_header(fh, where: str):
 
     Refuses object dtypes (they need pickle) and absurd sizes, without reading data.
     """
-    with library_errors(where, "a NumPy .npy array"):
+    with library_errors(where, "a NumPy .npy array", label=where):
         version = np.lib.format.read_magic(fh)
         if version == (1, 0):
             shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
@@ -144,7 +146,7 @@ def load_npy(path, where: str | None = None) -> np.ndarray:
     with open(path, "rb") as fh:
         read_npy_header(fh, where)
         fh.seek(0)
-        with library_errors(where, "a NumPy .npy array"):
+        with library_errors(path, "a NumPy .npy array", label=where):
             return np.lib.format.read_array(fh, allow_pickle=False)
 
 

@@ -17,12 +17,12 @@ from attractorfit.recording import Recording
 __all__ = ["load"]
 
 _BY_SUFFIX = {
-    ".nwb": (read_nwb, "NWB file"),
-    ".csv": (read_table, "spike table"),
-    ".tsv": (read_table, "spike table"),
-    ".tab": (read_table, "spike table"),
-    ".txt": (read_table, "spike table"),
-    ".npz": (read_npz, "NPZ archive"),
+    ".nwb": (read_nwb, "NWB files"),
+    ".csv": (read_table, "spike tables"),
+    ".tsv": (read_table, "spike tables"),
+    ".tab": (read_table, "spike tables"),
+    ".txt": (read_table, "spike tables"),
+    ".npz": (read_npz, "NPZ archives"),
 }
 _REFUSED_SUFFIXES = {
     ".pkl": "a pickle file can run arbitrary code when it is read",
@@ -35,13 +35,13 @@ _REFUSED_SUFFIXES = {
 def _reader_for(path):
     if os.path.isdir(path):
         if os.path.isfile(os.path.join(path, "spike_times.npy")):
-            return read_sorter_folder, "spike-sorter folder"
-        return read_neo, "folder read by neo"
+            return read_sorter_folder, "spike-sorter folders"
+        return read_neo, "folders read by neo"
     suffix = os.path.splitext(path)[1].lower()
     if suffix in _REFUSED_SUFFIXES:
         raise InputError(f"{source_name(path)}: not read: {_REFUSED_SUFFIXES[suffix]}; "
                          f"supported: {SUPPORTED_FORMATS}")
-    return _BY_SUFFIX.get(suffix, (read_neo, "file read by neo"))
+    return _BY_SUFFIX.get(suffix, (read_neo, "files read by neo"))
 
 
 def load(path, **options) -> Recording:
@@ -124,7 +124,7 @@ def load(path, **options) -> Recording:
                 if p.kind is inspect.Parameter.KEYWORD_ONLY]
     unknown = sorted(k for k, v in options.items() if k not in accepted and v is not None)
     if unknown:
-        raise InputError(f"{source_name(path)}: option(s) {unknown} do not apply to a "
+        raise InputError(f"{source_name(path)}: option(s) {unknown} do not apply to "
                          f"{what}; accepted: {', '.join(accepted)}")
     kwargs = {k: v for k, v in options.items() if k in accepted}
     return reader(path, **kwargs)

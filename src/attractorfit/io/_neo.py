@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import os
 
 from attractorfit.errors import InputError
@@ -42,6 +44,19 @@ def _candidates(path, name: str) -> list:
         raise InputError(f"{name}: not read ({reasons or 'neo has no reader for it'}); "
                          f"supported: {SUPPORTED_FORMATS}")
     return usable
+
+
+@contextlib.contextmanager
+def _quiet_neo():
+    """Silence neo's log warnings while a candidate IO tries a file (they would
+    flood the terminal on a file of the wrong format); failures are reported."""
+    logger = logging.getLogger("neo")
+    level = logger.level
+    logger.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
 
 
 def _read_spikes_block(cls, path):
@@ -113,7 +128,7 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
     errors = []
     for cls in _candidates(path, name):
         try:
-            with track_reads(folder) as opened:
+            with track_reads(folder) as opened, _quiet_neo():
                 block = _read_spikes_block(cls, path)
         except Exception as exc:  # noqa: BLE001 -- library failure on this file
             reason = (str(exc).strip().splitlines() or [""])[0][:200]

@@ -63,7 +63,7 @@ def _times(arrays, key, where, factor, what):
     arr = check_array(f"{where}: array {key!r}", arr, ndim=1)
     if arr.size and arr.min() < 0:
         i = int(np.argmin(arr))
-        raise InputError(f"{where}: array {key!r} element {i} is {arr[i]!r}; expected "
+        raise InputError(f"{where}: array {key!r} element {i} is {arr[i].item()!r}; expected "
                          f"{what} >= 0")
     return arr * factor if factor != 1.0 else arr
 
@@ -81,12 +81,13 @@ def _labels(arr, key, where) -> np.ndarray:
             raise InputError(f"{where}: array {key!r} holds bytes that are not UTF-8 "
                              "text; expected unit labels") from None
     if arr.dtype.kind == "f":
-        whole = np.isfinite(arr) & (arr == np.round(arr)) & (np.abs(arr) < 2 ** 53)
+        wide = arr.astype(np.float64)
+        whole = np.isfinite(wide) & (wide == np.round(wide)) & (np.abs(wide) < 2 ** 53)
         if not whole.all():
             i = int(np.flatnonzero(~whole)[0])
-            raise InputError(f"{where}: array {key!r} element {i} is {arr[i]!r}; expected "
+            raise InputError(f"{where}: array {key!r} element {i} is {arr[i].item()!r}; expected "
                              "unit labels (whole numbers or text)")
-        return arr.astype(np.int64).astype(str)
+        return wide.astype(np.int64).astype(str)
     raise InputError(f"{where}: array {key!r} has dtype {arr.dtype}; expected unit labels "
                      "(whole numbers or text)")
 

@@ -171,8 +171,9 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
     -------
     Recording
         Units in the order of their ids (numerical when all are integers), as every
-        reader returns them. Trials from the file's trials table with every one-value-per-trial column as a
-        label; without a trials table, the epochs table (its tags joined by commas).
+        reader returns them. Trials from the file's trials table with every
+        one-value-per-trial column as a label; without a trials table, the epochs
+        table (its tags joined by commas).
 
     Raises
     ------

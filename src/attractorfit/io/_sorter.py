@@ -56,6 +56,9 @@ def _read_params(path) -> tuple[dict, dict]:
             text = fh.read()
         tree = ast.parse(text, filename=name)
     except SyntaxError as exc:
+        if exc.lineno is None:  # e.g. NUL bytes: not text at all
+            raise InputError(f"{name}: not a Python text file ({exc.msg}); expected "
+                             "assignments such as 'sample_rate = 30000.0'") from None
         raise InputError(f"{name} line {exc.lineno}: not valid Python syntax ({exc.msg}); "
                          "expected assignments such as 'sample_rate = 30000.0'") from None
     except (ValueError, UnicodeDecodeError, RecursionError, MemoryError) as exc:
@@ -219,7 +222,7 @@ def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
     bad = ~np.isfinite(times) | (times < 0)
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
-        raise InputError(f"{name}/spike_times.npy: element {i} is {samples[i]!r}; expected "
+        raise InputError(f"{name}/spike_times.npy: element {i} is {samples[i].item()!r}; expected "
                          "sample indices >= 0")
     times /= rate
 

@@ -64,15 +64,23 @@ def _delimiter(path, delimiter) -> str:
 def _rows(path, delimiter):
     """Yield ``(line_number, fields)`` of every non-blank row (the header first).
 
-    Fields are stripped of surrounding spaces. Decoding and CSV syntax errors become
-    InputError naming the line.
+    Fields are stripped of surrounding spaces. Lines are decoded one at a time so
+    that decoding and CSV syntax errors become InputError naming the line.
     """
     name = source_name(path)
+    physical = [0]
+
+    def lines(fh):
+        for k, raw in enumerate(fh, start=1):
+            physical[0] = k
+            text = raw.decode("utf-8")
+            yield text[1:] if k == 1 and text.startswith("\ufeff") else text
+
     reader = None
     try:
-        with open(path, encoding="utf-8-sig", newline="") as fh:
-            reader = csv.reader(fh, delimiter=delimiter, skipinitialspace=delimiter == " ",
-                                strict=False)
+        with open(path, "rb") as fh:
+            reader = csv.reader(lines(fh), delimiter=delimiter,
+                                skipinitialspace=delimiter == " ", strict=True)
             for row in reader:
                 fields = [f.strip() for f in row]
                 if delimiter == " ":
@@ -80,12 +88,11 @@ def _rows(path, delimiter):
                 if any(fields):
                     yield reader.line_num, fields
     except UnicodeDecodeError:
-        line = (reader.line_num + 1) if reader is not None else 1
-        raise InputError(f"{name} line {line}: the file is not UTF-8 text; expected a text "
-                         "table with a header row") from None
+        raise InputError(f"{name} line {physical[0]}: the file is not UTF-8 text; expected "
+                         "a text table with a header row") from None
     except csv.Error as exc:
-        line = (reader.line_num) if reader is not None else 1
-        raise InputError(f"{name} line {line}: not a readable table row ({exc})") from None
+        raise InputError(f"{name} line {physical[0]}: not a readable table row ({exc})"
+                         ) from None
 
 
 def _header(path, rows, *, what: str):
@@ -115,9 +122,12 @@ def _find_column(header, wanted: str, *, path, line: int, option: str,
         if len(folded) == 1:
             return folded[0]
     shown = ", ".join(repr(h) for h in header[:12]) + (" ..." if len(header) > 12 else "")
+    hint = ""
+    if len(header) == 1 and any(d in header[0] for d in ",\t;| "):
+        hint = "; the header has a single field: check the delimiter (option delimiter=)"
     raise InputError(f"{source_name(path)} line {line}: no column {wanted!r} in the header "
                      f"({shown}); expected a {wanted!r} column (set its name with "
-                     f"{option}=)")
+                     f"{option}=){hint}")
 
 
 def _check_width(path, line, fields, header, delimiter):
