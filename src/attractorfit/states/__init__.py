@@ -7,6 +7,7 @@ Stage 3 of the flow (binning -> latent/**states** -> network/fit).
 from attractorfit.states._hmm import PoissonHMM
 from attractorfit.states._feature import (BinaryFeatureHMM, CubeComparison,
                                           compare_cube_vs_free, vertex_codes)
+from attractorfit.states._select import StateCountChoice, choose_n_states
 
 __all__ = [
     "PoissonHMM",
@@ -14,4 +15,6 @@ __all__ = [
     "CubeComparison",
     "compare_cube_vs_free",
     "vertex_codes",
+    "StateCountChoice",
+    "choose_n_states",
 ]

@@ -33,7 +33,8 @@ from attractorfit._validation import check_int, check_positive, check_rng
 from attractorfit.errors import InputError
 from attractorfit.states._forward_backward import forward_backward
 from attractorfit.states._hmm import (RATE_FLOOR, PoissonHMM, _CountData, _CountHMMBase,
-                                      _log_emissions, _smoothed, check_count_sequences)
+                                      _log_emissions, _smoothed, check_count_sequences,
+                                      single_thread)
 
 __all__ = ["BinaryFeatureHMM", "CubeComparison", "compare_cube_vs_free", "vertex_codes"]
 
@@ -144,6 +145,10 @@ class BinaryFeatureHMM(_CountHMMBase):
         -------
         self
         """
+        with single_thread():
+            return self._fit(X)
+
+    def _fit(self, X):
         K = check_int("n_features", self.n_features, low=1, high=MAX_FEATURES)
         check_int("n_restarts", self.n_restarts, low=1)
         check_int("max_iter", self.max_iter, low=1)
@@ -182,7 +187,7 @@ class BinaryFeatureHMM(_CountHMMBase):
         if not self.converged_:
             warnings.warn(f"BinaryFeatureHMM(n_features={K}): EM did not converge in "
                           f"max_iter={self.max_iter} iterations", ConvergenceWarning,
-                          stacklevel=2)
+                          stacklevel=3)
         return self
 
 

@@ -53,3 +53,236 @@ def _fold_loglik(seqs, test, make_model, seed):
     train = [x for x, m in zip(seqs, mask) if m]
     model = make_model(seed).fit(train)
     return model._sequence_logliks(_CountData([seqs[i] for i in test]))
+
+
+def _loglik_and_entropy(model, data) -> tuple:
+    """Log-likelihood and entropy of the posterior over state paths,
+    H = log p(x) - E_post[log p(x, z)] (summed over sequences)."""
+    ll, post, xi, s0, log_b = model._posteriors(data)
+    start, trans, _ = model._joint_params()
+
+    def _xlogy(c, p):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(c > 0, c * np.log(p), 0.0).sum()
+
+    complete = _xlogy(s0, start) + _xlogy(xi, trans) + float((post * log_b).sum())
+    return float(ll), max(float(ll - complete), 0.0)
+
+
+@dataclass
+class StateCountChoice:
+    """Number of states chosen for a Poisson HMM, with the curves it came from.
+
+    Attributes
+    ----------
+    candidates : ndarray of int
+        Candidate numbers of states S, increasing.
+    chosen : int
+        The chosen S.
+    rule : str
+        The rule that chose it (see :func:`choose_n_states`).
+    choices : dict of str to int
+        The S every available rule would choose (rules needing held-out scores are
+        missing when ``n_folds`` is None).
+    loglik : ndarray
+        Log-likelihood of all trials under the model fitted on all trials, per S.
+    bic : ndarray
+        -2 loglik + p log(T), T the total number of bins (lower is better).
+    icl : ndarray
+        bic + 2 H, H the entropy of the posterior over state paths (integrated
+        completed likelihood; lower is better).
+    n_parameters : ndarray of int
+    heldout_loglik : ndarray
+        Log-likelihood of held-out trials summed over the folds (each trial held out
+        once), per S; NaN when ``n_folds`` is None.
+    heldout_per_bin : ndarray
+        The same divided by the total number of bins.
+    heldout_per_trial : ndarray (n_candidates, n_trials)
+        Held-out log-likelihood of each trial.
+    heldout_se : ndarray
+        Standard error of the difference to the best candidate's held-out
+        log-likelihood (sqrt(n_trials) x s.d. of per-trial differences; 0 for the best).
+    n_bins : int
+    n_trials : int
+    n_folds : int or None
+    sticky : float
+        Sticky prior used for every fit (see :class:`PoissonHMM`).
+    model : PoissonHMM
+        The chosen model, fitted on all trials.
+    models : dict of int to PoissonHMM
+        Every candidate's model fitted on all trials.
+    """
+
+    candidates: np.ndarray
+    chosen: int
+    rule: str
+    choices: dict
+    loglik: np.ndarray
+    bic: np.ndarray
+    icl: np.ndarray
+    n_parameters: np.ndarray
+    heldout_loglik: np.ndarray
+    heldout_per_bin: np.ndarray
+    heldout_per_trial: np.ndarray
+    heldout_se: np.ndarray
+    n_bins: int
+    n_trials: int
+    n_folds: int | None
+    sticky: float
+    model: PoissonHMM = field(repr=False)
+    models: dict = field(repr=False)
+
+
+def _full_task(seqs, S, seed, opts):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        model = PoissonHMM(S, rng=np.random.default_rng(seed), **opts).fit(seqs)
+    return (model, *_loglik_and_entropy(model, _CountData(seqs)))
+
+
+def _fold_task(seqs, S, test, seed, opts):
+    def make(s):
+        return PoissonHMM(S, rng=np.random.default_rng(s), **opts)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        return _fold_loglik(seqs, test, make, seed)
+
+
+def _one_se(per_trial: np.ndarray) -> tuple:
+    """Smallest candidate within one standard error of the best held-out total."""
+    totals = per_trial.sum(axis=1)
+    best = int(np.argmax(totals))
+    n = per_trial.shape[1]
+    se = np.zeros(len(totals))
+    for i in range(len(totals)):
+        d = per_trial[best] - per_trial[i]
+        se[i] = np.sqrt(n) * d.std(ddof=1) if n > 1 else 0.0
+    within = [i for i in range(best + 1) if totals[best] - totals[i] <= se[i]]
+    return within[0], se
+
+
+def choose_n_states(sequences, *, candidates=range(1, 9), rule="bic", n_folds=5,
+                    sticky=0.0, n_restarts=3, max_iter=100, tol=1e-4, fast=False, rng=None,
+                    n_jobs=1) -> StateCountChoice:
+    """Fit Poisson HMMs with each candidate number of states and choose one.
+
+    Parameters
+    ----------
+    sequences : list of count arrays (T_i x N), or BinnedCounts
+        Trials (independent sequences).
+    candidates : iterable of int
+        Numbers of states to try (each >= 1, distinct).
+    rule : {"bic", "icl", "heldout", "heldout_1se"}
+        ``bic``: smallest BIC; ``icl``: smallest ICL; ``heldout``: largest
+        held-out log-likelihood over trials; ``heldout_1se``: the smallest S whose
+        held-out log-likelihood is within one standard error of the best.
+    n_folds : int or None
+        Folds over whole trials for the held-out log-likelihood; ``None`` skips
+        cross-validation (only with ``bic`` or ``icl``; faster).
+    sticky : float
+        Sticky self-transition prior of every fit (see :class:`PoissonHMM`). BIC and
+        ICL are computed from the plain log-likelihood of the sticky fits.
+    n_restarts, max_iter, tol :
+        EM settings of every fit (see :class:`PoissonHMM`).
+    fast : bool
+        Cheaper fits for repeated use (e.g. inside a bootstrap): one restart,
+        at most 50 iterations, tol 1e-3 per bin, and no cross-validation unless the
+        rule needs it.
+    rng : None, int or Generator
+        Fold assignment and per-fit seeds; every (candidate, fold) fit gets its own
+        stream from ``SeedSequence.spawn``, so the result does not depend on
+        ``n_jobs``.
+    n_jobs : int
+        Parallel fits (joblib); 1 runs serially.
+
+    Returns
+    -------
+    StateCountChoice
+
+    Raises
+    ------
+    InputError
+        Bad sequences, candidates, rule, n_folds or options.
+    """
+    seqs = check_count_sequences("sequences", sequences)
+    if rule not in RULES:
+        raise InputError(f"rule: expected one of {', '.join(RULES)}, got {rule!r}")
+    try:
+        cands = [int(c) for c in candidates]
+    except (TypeError, ValueError):
+        raise InputError(f"candidates: expected whole numbers of states, got {candidates!r}") \
+            from None
+    if not cands:
+        raise InputError("candidates: expected at least one number of states, got none")
+    for c, orig in zip(cands, candidates):
+        check_int("candidates", orig, low=1)
+    if len(set(cands)) != len(cands):
+        raise InputError(f"candidates: expected distinct numbers of states, got {cands}")
+    cands = sorted(cands)
+    sticky = check_nonnegative("sticky", sticky)
+    n_jobs = check_int("n_jobs", n_jobs, low=1)
+    n_bins = sum(len(x) for x in seqs)
+    if cands[-1] > n_bins:
+        raise InputError(f"candidates: {cands[-1]} states need at least {cands[-1]} bins, got "
+                         f"{n_bins}")
+    if fast:
+        n_restarts, max_iter, tol = 1, min(int(max_iter), 50), max(float(tol), 1e-3)
+        if rule not in _NEEDS_FOLDS:
+            n_folds = None
+    if n_folds is None and rule in _NEEDS_FOLDS:
+        raise InputError(f"n_folds: rule {rule!r} needs held-out trials; got n_folds=None")
+    opts = dict(sticky=sticky, n_restarts=n_restarts, max_iter=max_iter, tol=tol)
+    PoissonHMM(1, **opts)._check_options(_CountData(seqs[:1]))  # validate options early
+    rng = check_rng(rng)
+    folds = _trial_folds(len(seqs), n_folds, rng) if n_folds is not None else []
+    root = np.random.SeedSequence(int(rng.integers(2**63 - 1)))
+    cand_seeds = root.spawn(len(cands))
+    tasks = []
+    for i, (S, ss) in enumerate(zip(cands, cand_seeds)):
+        full_seed, fold_seed = ss.spawn(2)
+        tasks.append(("full", i, None, S, full_seed))
+        for f, child in enumerate(fold_seed.spawn(len(folds))):
+            tasks.append(("fold", i, f, S, child))
+
+    def run(task):
+        kind, i, f, S, seed = task
+        if kind == "full":
+            return _full_task(seqs, S, seed, opts)
+        return _fold_task(seqs, S, folds[f], seed, opts)
+
+    if n_jobs == 1 or len(tasks) == 1:
+        results = [run(t) for t in tasks]
+    else:
+        from joblib import Parallel, delayed
+
+        results = Parallel(n_jobs=n_jobs)(delayed(run)(t) for t in tasks)
+
+    n_c = len(cands)
+    loglik, entropy = np.empty(n_c), np.empty(n_c)
+    models = {}
+    per_trial = np.full((n_c, len(seqs)), np.nan)
+    for (kind, i, f, S, _), res in zip(tasks, results):
+        if kind == "full":
+            models[S], loglik[i], entropy[i] = res
+        else:
+            per_trial[i, folds[f]] = res
+    n_par = np.array([models[S].n_parameters() for S in cands])
+    bic = -2.0 * loglik + n_par * np.log(n_bins)
+    icl = bic + 2.0 * entropy
+    choices = {"bic": cands[int(np.argmin(bic))], "icl": cands[int(np.argmin(icl))]}
+    if folds:
+        heldout = per_trial.sum(axis=1)
+        i1, se = _one_se(per_trial)
+        choices["heldout"] = cands[int(np.argmax(heldout))]
+        choices["heldout_1se"] = cands[i1]
+    else:
+        heldout = np.full(n_c, np.nan)
+        se = np.full(n_c, np.nan)
+    chosen = choices[rule]
+    return StateCountChoice(
+        candidates=np.array(cands), chosen=chosen, rule=rule, choices=choices, loglik=loglik,
+        bic=bic, icl=icl, n_parameters=n_par, heldout_loglik=heldout,
+        heldout_per_bin=heldout / n_bins, heldout_per_trial=per_trial, heldout_se=se,
+        n_bins=n_bins, n_trials=len(seqs), n_folds=len(folds) if folds else None,
+        sticky=sticky, model=models[chosen], models=models)
