@@ -228,3 +228,38 @@ def test_corrupted_archives_load_or_raise_input_error(tmp_path, seed, n_flips, c
     path = tmp_path / "r.npz"
     path.write_bytes(bytes(data))
     _loads_or_input_error(path)
+
+
+def test_duplicate_member_names(tmp_path):
+    path = tmp_path / "d.npz"
+    buf = io.BytesIO()
+    np.save(buf, np.array([0.1, 0.2]))
+    with pytest.warns(UserWarning, match="Duplicate name"):
+        with zipfile.ZipFile(path, "w") as zf:
+            zf.writestr("spike_times.npy", buf.getvalue())
+            zf.writestr("spike_times.npy", buf.getvalue())
+    with pytest.raises(InputError, match="d.npz: array 'spike_times' appears twice"):
+        load(path)
+
+
+@pytest.mark.parametrize("arrays, message", [
+    ({"spike_units": np.array([b"\xff", b"a"])},
+     "array 'spike_units' holds bytes that are not UTF-8 text"),
+    ({"spike_units": np.array([1j, 2j])},
+     "array 'spike_units' has dtype complex128; expected unit labels"),
+    ({"trial_start": [0.0], "trial_stop": [1.0], "trial_x": np.array([1j])},
+     "array 'trial_x' has dtype complex128; expected numbers or text trial labels"),
+])
+def test_bad_label_arrays(tmp_path, arrays, message):
+    full = {"spike_times": np.array([0.1, 0.2]), "spike_units": np.array([1, 2])}
+    full.update(arrays)
+    with pytest.raises(InputError, match=message):
+        load(_npz(tmp_path / "r.npz", **full))
+
+
+def test_trial_labels_without_trial_times_are_ignored_with_a_warning(tmp_path):
+    rec = load(_npz(tmp_path / "r.npz", spike_times=np.array([0.1, 0.2]),
+                    spike_units=np.array([1, 2]), trial_item=np.array(["a"])))
+    assert rec.trials is None
+    assert any("['trial_item'] ignored: trial labels need 'trial_start'" in w
+               for w in rec.warnings)

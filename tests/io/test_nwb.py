@@ -244,3 +244,21 @@ def test_absurd_spike_count_is_refused_before_reading(tmp_path, monkeypatch):
     with pytest.raises(InputError, match="s.nwb: units spike_times: the file claims an "
                                          "array of shape \\(8,\\)"):
         load(path)
+
+
+def test_inconsistent_spike_index(tmp_path):
+    import h5py
+
+    path = _units_file(tmp_path / "s.nwb", trials=False)
+    with h5py.File(path, "r+") as f:  # damage the file after pynwb wrote it
+        f["units/spike_times_index"][1] = 1
+    with pytest.raises(InputError, match="s.nwb: the units table's spike_times_index is "
+                                         "inconsistent with its 8 spike times"):
+        load(path)
+
+
+def test_unit_column_that_is_not_one_name_per_unit(tmp_path):
+    path = _units_file(tmp_path / "s.nwb", obs_intervals=True, trials=False)
+    with pytest.raises(InputError, match="unit_column: column 'obs_intervals' of s.nwb's "
+                                         "units table does not hold one name per unit"):
+        load(path, unit_column="obs_intervals")

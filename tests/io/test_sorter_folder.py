@@ -59,7 +59,7 @@ def test_params_is_parsed_not_executed(tmp_path):
 
 def test_sampling_rate_option(tmp_path):
     folder = _folder(tmp_path, params=None)
-    rec = load(folder, sampling_rate=20000)
+    rec = read_sorter_folder(folder, sampling_rate=20000)
     np.testing.assert_array_equal(rec.spike_times[0], np.array([300, 30000]) / 20000)
     with pytest.raises(InputError, match="sorted: no sampling rate .*expected the option "
                                          "sampling_rate="):
@@ -213,3 +213,11 @@ def test_random_bytes_as_npy(tmp_path):
 def test_bad_label_files(tmp_path, text, message):
     with pytest.raises(InputError, match=message):
         load(_folder(tmp_path, cluster_group=text))
+
+
+def test_text_spike_times(tmp_path):
+    folder = _folder(tmp_path)
+    np.save(folder / "spike_times.npy", np.array(["1"] * 6))
+    with pytest.raises(InputError, match="sorted/spike_times.npy: dtype <U1; expected sample "
+                                         "indices"):
+        load(folder)

@@ -119,6 +119,12 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
         No neo IO for the suffix, a refused IO (pickle files, neo's example IO, NWB
         which :func:`read_nwb` reads), every candidate IO failing on the file, bad
         times or trials, fewer than two units, no spikes.
+
+    References
+    ----------
+    .. [1] Garcia S, Guarino D, Jaillet F, Jennings T, Pröpper R, Rautenberg PL, et al.
+       (2014). Neo: an object model for handling electrophysiology data in multiple
+       formats. Frontiers in Neuroinformatics 8:10.
     """
     path = os.fspath(path)
     is_dir = os.path.isdir(path)

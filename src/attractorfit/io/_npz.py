@@ -38,7 +38,7 @@ def _read_members(path) -> dict:
                                  "array names")
             with library_errors(path, f"an NPZ archive (member {info.filename!r})"):
                 with zf.open(info) as fh:
-                    shape, _, dtype = read_npy_header(fh, where)
+                    read_npy_header(fh, where)  # refuses objects and absurd sizes
                 with zf.open(info) as fh:
                     arr = np.lib.format.read_array(fh, allow_pickle=False)
             arrays[key] = arr

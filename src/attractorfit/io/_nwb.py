@@ -73,10 +73,7 @@ def _read_units(units, name: str, unit_column, warnings: list):
         raise InputError(f"{name}: the units table's spike_times_index is inconsistent "
                          f"with its {flat.size} spike times; expected a valid NWB file")
     trains = np.split(flat, ends[:-1]) if ends.size else []
-    ids = [str(i) for i in np.asarray(units.id.data[:]).ravel()]
-    if len(ids) != len(trains):
-        raise InputError(f"{name}: the units table has {len(ids)} ids but {len(trains)} "
-                         "spike trains; expected one per unit")
+    ids = [str(i) for i in np.asarray(units.id.data[:]).ravel()]  # hdmf checked lengths
     chosen = unit_column
     if chosen is None:
         chosen = next((c for c in NAME_COLUMNS if c in units.colnames), None)
@@ -181,6 +178,12 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
         Not a readable NWB file (missing, empty, truncated, not HDF5), no units table
         or no spike times, a ``unit_column`` that is absent, bad times or trials, fewer
         than two units, no spikes.
+
+    References
+    ----------
+    .. [1] Rübel O, Tritt A, Ly R, Dichter BK, Ghosh S, Niu L, et al. (2022). The
+       Neurodata Without Borders ecosystem for neurophysiological data science.
+       eLife 11:e78362.
     """
     path = check_file(path)
     name = source_name(path)
