@@ -147,7 +147,7 @@ _DTYPES = st.one_of(hnp.floating_dtypes(), hnp.integer_dtypes(), hnp.unsigned_in
                     hnp.datetime64_dtypes(), st.just(np.dtype([("a", "<f8"), ("b", "<i4")])))
 _ARRAYS = hnp.arrays(dtype=_DTYPES, shape=hnp.array_shapes(min_dims=0, max_dims=2,
                                                             min_side=0, max_side=6))
-_SETTINGS = settings(max_examples=150, deadline=None,
+_SETTINGS = settings(max_examples=150, deadline=None, database=None,
                      suppress_health_check=[HealthCheck.function_scoped_fixture,
                                             HealthCheck.too_slow])
 

@@ -245,7 +245,7 @@ def _loads_or_input_error(path, **kw):
     return rec
 
 
-_SETTINGS = settings(max_examples=150, deadline=None,
+_SETTINGS = settings(max_examples=150, deadline=None, database=None,
                      suppress_health_check=[HealthCheck.function_scoped_fixture])
 
 
@@ -285,7 +285,7 @@ def test_any_bytes_load_or_raise_input_error(tmp_path, data, suffix):
 
 
 @pytest.mark.filterwarnings("ignore::attractorfit.errors.InputWarning")
-@settings(max_examples=100, deadline=None,
+@settings(max_examples=100, deadline=None, database=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(times=st.lists(st.floats(min_value=0, max_value=1e6, allow_nan=False), min_size=2,
                       max_size=30),
