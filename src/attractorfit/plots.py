@@ -627,12 +627,12 @@ def occupancy_bars(occ_data, occ_model=None, ci_model=None, nulls=None, *, ci_da
     ax.set_xlabel("state")
     ax.set_ylabel(ylabel)
     ax.set_ylim(0, min(1.0, top * 1.15) if top > 0 else 1.0)
-    if len(series) > 1:
-        ax.legend(fontsize=_FS_SMALL, frameon=False)
-    if any(s[2] is not None for s in series):
-        ax.text(1.0, -0.22 if n <= 8 else -0.3, "error bars: confidence intervals",
-                transform=ax.transAxes, ha="right", va="top", fontsize=_FS_SMALL,
-                color="#444444")
+    has_ci = any(s[2] is not None for s in series)
+    if len(series) > 1 or has_ci:
+        leg = ax.legend(fontsize=_FS_SMALL, frameon=False,
+                        title="error bars: confidence intervals" if has_ci else None,
+                        title_fontsize=_FS_SMALL)
+        leg.get_title().set_color("#444444")
     _title(ax, title)
     return _finish(fig)
 
