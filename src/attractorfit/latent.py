@@ -333,7 +333,7 @@ def _pca_from_covariance(cov, n_dims):
 def _fit_cov(cov, k, method, *, quiet: bool = False):
     """Loadings and private variances of a K-dimensional model of ``cov``.
 
-    ``quiet``: cross-validation candidates; at most 1000 EM steps and no
+    ``quiet``: cross-validation candidates; at most 1000 EM steps, tolerance 1e-6 and no
     ConvergenceWarning (over-sized candidates converge slowly towards boundary
     solutions with a private variance at its floor, and change the held-out curve
     by far less than the differences between candidates).
@@ -345,7 +345,7 @@ def _fit_cov(cov, k, method, *, quiet: bool = False):
         if quiet:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                W, psi, _ = fa_from_covariance(cov, k, max_iter=1000)
+                W, psi, _ = fa_from_covariance(cov, k, max_iter=1000, tol=1e-6)
         else:
             W, psi, _ = fa_from_covariance(cov, k)
         return W, psi

@@ -7,8 +7,8 @@ from sklearn.metrics import r2_score
 
 from attractorfit.errors import InputError
 from attractorfit.latent import LatentModel
-from attractorfit.states._vertices import (codes_from_feature_model, codes_to_text,
-                                           cube_r2, hypercube_vertices, vertex_codes)
+from attractorfit.states._vertices import (assign_vertex_codes, codes_from_feature_model,
+                                           codes_to_text, cube_r2, hypercube_vertices)
 
 
 def _additive_states(k, s, n_units=30, seed=0):
@@ -28,7 +28,7 @@ def _same_up_to_axes(found, true):
 @pytest.mark.parametrize("k,s", [(1, 2), (2, 3), (2, 4), (3, 6), (3, 8), (4, 11)])
 def test_additive_states_recovered(k, s):
     rates, true = _additive_states(k, s, seed=k * 10 + s)
-    vc = vertex_codes(rates, rng=0)
+    vc = assign_vertex_codes(rates, rng=0)
     assert vc.n_dims == k
     assert vc.cube_r2 == pytest.approx(1.0, abs=1e-10)
     if s == 2 ** k:
@@ -42,7 +42,7 @@ def test_additive_states_recovered(k, s):
 def test_non_additive_rates_below_one():
     rng = np.random.default_rng(1)
     for s in (4, 6, 8):
-        vc = vertex_codes(rng.uniform(1.0, 20.0, (s, 40)), rng=0)
+        vc = assign_vertex_codes(rng.uniform(1.0, 20.0, (s, 40)), rng=0)
         assert vc.cube_r2 < 0.95
 
 
@@ -60,7 +60,7 @@ def test_cube_r2_against_sklearn():
 
 def test_orientation_and_text():
     rates, true = _additive_states(2, 4, seed=3)
-    vc = vertex_codes(rates)
+    vc = assign_vertex_codes(rates)
     # +1 is the side with the higher mean log-rate; axes ordered by effect size
     assert np.all(vc.axis_effects.mean(axis=1) > 0)
     norms = np.linalg.norm(vc.axis_effects, axis=1)
@@ -70,9 +70,9 @@ def test_orientation_and_text():
 
 
 def test_one_state_and_forced_dims():
-    vc = vertex_codes(np.array([[1.0, 2.0, 3.0]]))
+    vc = assign_vertex_codes(np.array([[1.0, 2.0, 3.0]]))
     assert vc.codes.tolist() == [[1]]
-    vc = vertex_codes(np.random.default_rng(0).uniform(1, 5, (3, 10)), n_dims=3)
+    vc = assign_vertex_codes(np.random.default_rng(0).uniform(1, 5, (3, 10)), n_dims=3)
     assert vc.codes.shape == (3, 3)
     assert vc.cube_r2 == pytest.approx(1.0)  # S <= K + 1: exact by counting
 
@@ -85,7 +85,7 @@ def test_codes_in_latent_space():
         st = rng.integers(4, size=40)
         seqs.append(np.sqrt(rng.poisson(true_rates[st])))
     latent = LatentModel(n_dims=3).fit(seqs).result_
-    vc = vertex_codes(true_rates, latent=latent)
+    vc = assign_vertex_codes(true_rates, latent=latent)
     assert vc.space == "latent"
     assert vc.axis_effects.shape == (2, 3)
     assert len({tuple(r) for r in vc.codes}) == 4
@@ -107,17 +107,18 @@ def test_codes_from_feature_model():
 
 def test_errors():
     with pytest.raises(InputError, match="state_rates: expected rates >= 0"):
-        vertex_codes(np.array([[1.0, -1.0], [2.0, 2.0]]))
+        assign_vertex_codes(np.array([[1.0, -1.0], [2.0, 2.0]]))
     with pytest.raises(InputError, match="state_rates: expected rates >= 0"):
         cube_r2(np.array([[1.0, -1.0], [2.0, 2.0]]), np.array([[1], [-1]]))
     with pytest.raises(InputError, match="state_rates: expected a 2-dimensional array"):
-        vertex_codes(np.ones(3))
+        assign_vertex_codes(np.ones(3))
     with pytest.raises(InputError, match=r"codes: expected shape \(2, K\)"):
         cube_r2(np.ones((2, 3)), np.ones((3, 1)))
     with pytest.raises(InputError, match="n_dims: expected a whole number >= 2"):
-        vertex_codes(np.ones((4, 3)), n_dims=1)
+        assign_vertex_codes(np.ones((4, 3)), n_dims=1)
     with pytest.raises(InputError, match="codes: expected a 2-dimensional array"):
         codes_to_text(np.ones(3))
-    latent = LatentModel(n_dims=1).fit([np.random.default_rng(0).random((10, 4))] * 3).result_
+    rng = np.random.default_rng(0)
+    latent = LatentModel(n_dims=1).fit([rng.random((10, 4)) for _ in range(3)]).result_
     with pytest.raises(InputError, match="state_rates: 3 units, the latent model has 4"):
-        vertex_codes(np.ones((2, 3)), latent=latent)
+        assign_vertex_codes(np.ones((2, 3)), latent=latent)

@@ -18,3 +18,21 @@ __all__ = [
     "StateCountChoice",
     "choose_n_states",
 ]
+
+# vertex codes, segments, the state analysis and the discreteness test
+from attractorfit.states._vertices import (VertexCodes, assign_vertex_codes,  # noqa: E402
+                                           codes_from_feature_model, codes_to_text, cube_r2)
+from attractorfit.states._segments import (ConditionTable, Segments,  # noqa: E402
+                                           StateDecoding, SurvivalCurve, decode_posteriors,
+                                           kaplan_meier)
+from attractorfit.states._analysis import StateFit, analyse_states  # noqa: E402
+from attractorfit.states._discreteness import (ContinuousNull,  # noqa: E402
+                                               DiscretenessResult, discreteness_test,
+                                               fit_continuous_null)
+
+__all__ += [
+    "VertexCodes", "assign_vertex_codes", "codes_from_feature_model", "codes_to_text",
+    "cube_r2", "ConditionTable", "Segments", "StateDecoding", "SurvivalCurve",
+    "decode_posteriors", "kaplan_meier", "StateFit", "analyse_states", "ContinuousNull",
+    "DiscretenessResult", "discreteness_test", "fit_continuous_null",
+]

@@ -279,7 +279,8 @@ def find_segments(bin_states, *, bin_size: float, trial_index=None) -> Segments:
     a = cat["a"].astype(np.int64)
     b = cat["b"].astype(np.int64)
     return Segments(trial=cat["trial"].astype(np.int64), trial_pos=cat["pos"].astype(np.int64),
-                    start=a * bin_size, stop=b * bin_size, start_bin=a, stop_bin=b,
+                    start=np.round(a * bin_size, 12), stop=np.round(b * bin_size, 12),
+                    start_bin=a, stop_bin=b,
                     state=cat["s"].astype(np.int64), censored=cat["c"].astype(bool))
 
 

@@ -23,8 +23,9 @@ import numpy as np
 
 from attractorfit._validation import check_array, check_int, check_rng
 from attractorfit.errors import InputError
+from attractorfit.states._feature import vertex_codes as hypercube_vertices
 
-__all__ = ["VertexCodes", "vertex_codes", "cube_r2", "codes_to_text", "hypercube_vertices",
+__all__ = ["VertexCodes", "assign_vertex_codes", "cube_r2", "codes_to_text",
            "codes_from_feature_model"]
 
 #: Largest number of code assignments searched exhaustively.
@@ -78,13 +79,6 @@ def codes_to_text(codes) -> list:
     if codes.ndim != 2:
         raise InputError(f"codes: expected a 2-dimensional array, got shape {codes.shape}")
     return ["".join("H" if c > 0 else "L" for c in row) for row in codes]
-
-
-def hypercube_vertices(n_dims: int) -> np.ndarray:
-    """All 2^K vertices of {-1,+1}^K, in binary order (bit k of the index is axis k)."""
-    k = int(n_dims)
-    idx = np.arange(2 ** k)
-    return np.where((idx[:, None] >> np.arange(k)[None, :]) & 1, 1, -1).astype(np.int64)
 
 
 def _floor_log(rates, rel_floor):
@@ -201,7 +195,7 @@ def _orient(codes, y):
     return codes * sign[None, :], eff * sign[:, None]
 
 
-def vertex_codes(state_rates, *, latent=None, n_dims=None, rel_floor: float = 1e-3,
+def assign_vertex_codes(state_rates, *, latent=None, n_dims=None, rel_floor: float = 1e-3,
                  rng=None) -> VertexCodes:
     """Assign each state a distinct vertex of {-1,+1}^K.
 
@@ -240,7 +234,7 @@ def vertex_codes(state_rates, *, latent=None, n_dims=None, rel_floor: float = 1e
         raise InputError("state_rates: expected rates >= 0, found a negative value")
     s = rates.shape[0]
     k_min = max(1, math.ceil(math.log2(s))) if s > 1 else 1
-    k = k_min if n_dims is None else check_int("n_dims", n_dims, low=k_min, high=16)
+    k = k_min if n_dims is None else check_int("n_dims", n_dims, low=k_min, high=8)
     rng = check_rng(rng)
     logr = _floor_log(rates, rel_floor)
     space = "log_rates"
