@@ -160,8 +160,9 @@ class Recording:
             raise InputError(f"{source}: unit id {dup!r} appears more than once; expected "
                              "unique unit ids")
         index = {u: i for i, u in enumerate(unit_ids)}
-        codes = np.fromiter((index.get(u, -1) for u in labels), dtype=np.int64,
-                            count=labels.size)
+        distinct, inverse = np.unique(labels, return_inverse=True)
+        lookup = np.array([index.get(u, -1) for u in distinct.tolist()], dtype=np.int64)
+        codes = lookup[inverse.ravel()] if labels.size else np.zeros(0, dtype=np.int64)
         order = np.lexsort((times, codes))  # by unit, then time: flat tables need not be sorted
         bounds = np.searchsorted(codes[order], np.arange(len(unit_ids) + 1))
         trains = [times[order[bounds[k]:bounds[k + 1]]] for k in range(len(unit_ids))]
