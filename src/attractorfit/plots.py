@@ -795,8 +795,7 @@ def transition_matrices(T_data, T_model=None, *, state_labels=None, off_diagonal
     fig = _new_figure(FULL_WIDTH if len(mats) == 2 else HALF_WIDTH * 1.3,
                       3.3 if n <= 8 else 4.2)
     axes = fig.subplots(1, len(mats), squeeze=False)[0]
-    cm = matplotlib.colormaps[cmap].copy()
-    cm.set_bad("white")
+    cm = matplotlib.colormaps[cmap].with_extremes(bad="white")
     im = None
     for ax, m, t in zip(axes, shown, titles):
         im = ax.imshow(m, cmap=cm, vmin=0.0, vmax=vmax, interpolation="nearest")
