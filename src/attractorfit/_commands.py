@@ -20,6 +20,26 @@ def register(sub) -> None:
                    help="print one JSON document instead of plain text")
     p.set_defaults(func=_inspect)
 
+    p = sub.add_parser(
+        "defaults", help="print every setting with its default and meaning (TOML)",
+        description="Print the full configuration with documented defaults as TOML. Save "
+                    "it, edit what you need and pass it to run/states with --config.")
+    p.set_defaults(func=_defaults)
+
+    p = sub.add_parser(
+        "states", help="discrete states and the discreteness test of one recording",
+        description="Bin the recording, choose the number of states, fit a Poisson hidden "
+                    "Markov model, give every state a vertex code, decode segments, "
+                    "occupancy and dwell times, and test whether discrete states describe "
+                    "the activity better than a continuous latent. Writes states.csv, "
+                    "posteriors.npz, summary.json and config.toml into --out.")
+    _add_load_options(p)
+    _add_run_options(p)
+    p.add_argument("--no-test", action="store_true",
+                   help="skip the discreteness test (it reruns the state analysis on "
+                        "every bootstrap surrogate and takes most of the time)")
+    p.set_defaults(func=_states)
+
 
 def _add_load_options(p) -> None:
     p.add_argument("path", help="recording: an NWB, NIX, CSV/TSV or NPZ file, a sorter "
@@ -34,6 +54,50 @@ def _add_load_options(p) -> None:
                         "params.py does not give it")
     p.add_argument("--good-only", action="store_true",
                    help="sorter folders: keep only units labelled good")
+
+
+def _add_run_options(p) -> None:
+    p.add_argument("--out", metavar="DIR",
+                   help="folder for the results (default: a new folder named after the "
+                        "input in the current directory; never the input's own folder)")
+    p.add_argument("--config", metavar="FILE",
+                   help="TOML file with settings that override the defaults "
+                        "(see 'attractorfit defaults')")
+    p.add_argument("--seed", type=int, default=None, metavar="N",
+                   help="seed of every random stream (default: run.seed of the "
+                        "configuration, 0); the same seed gives byte-identical results")
+    p.add_argument("--jobs", type=int, default=1, metavar="N",
+                   help="worker processes for bootstrap replicates and model fits "
+                        "(results do not depend on it)")
+    p.add_argument("--force", action="store_true",
+                   help="overwrite the results of an earlier run in --out")
+    p.add_argument("--quiet", action="store_true", help="no progress bars or notes")
+    p.add_argument("--verbose", action="store_true", help="log what each stage does")
+
+
+def _resolve(args):
+    """Configuration, seed and output folder from the command-line arguments."""
+    import os
+
+    from attractorfit.config import load_config, resolve_config
+    from attractorfit.errors import InputError
+
+    cfg = load_config(args.config) if args.config else resolve_config(None)
+    if args.seed is not None:
+        if args.seed < 0:
+            raise InputError(f"--seed: expected a whole number >= 0, got {args.seed}")
+        cfg["run"]["seed"] = args.seed
+    if args.jobs < 1:
+        raise InputError(f"--jobs: expected a whole number >= 1, got {args.jobs}")
+    out = args.out
+    if out is None:
+        stem = os.path.splitext(os.path.basename(os.path.normpath(args.path)))[0]
+        out = os.path.join(os.getcwd(), f"{stem}_attractorfit")
+    return cfg, int(cfg["run"]["seed"]), out
+
+
+def _progress_wanted(args) -> bool:
+    return not args.quiet and sys.stderr.isatty()
 
 
 def load_from_args(args):
@@ -94,6 +158,38 @@ def _inspect(args) -> int:
         out.write("\nwarnings\n")
         for w in rec.warnings:
             out.write(f"  - {w}\n")
+    return 0
+
+
+def _defaults(args) -> int:
+    from attractorfit.config import dumps_config
+
+    sys.stdout.write(dumps_config())
+    return 0
+
+
+def _states(args) -> int:
+    from attractorfit import pipeline
+
+    cfg, seed, out = _resolve(args)
+    folder = pipeline.RunFolder(out, inputs=[args.path] + ([args.trials] if args.trials else []),
+                                force=args.force)
+    rec = load_from_args(args)
+    res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=args.jobs,
+                              progress=_progress_wanted(args), discreteness=not args.no_test)
+    summary = pipeline.base_summary(res, seed=seed)
+    summary["states"] = res.state_fit.summary_block()
+    if res.discreteness is not None:
+        summary["discreteness"] = res.discreteness.summary_block()
+    pipeline.write_state_outputs(folder, res)
+    folder.write_text("config.toml", pipeline.dumps_config(cfg))
+    folder.write_json("summary.json", summary)
+    if not args.quiet:
+        sf = res.state_fit
+        print(f"{sf.n_states} states (vertex codes {', '.join(sf.vertex_text)}); "
+              f"results in {folder.path}")
+        if res.discreteness is not None:
+            print(res.discreteness.text())
     return 0
 
 

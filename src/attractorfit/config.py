@@ -63,6 +63,9 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "window": Param([], "analysis window [start, stop] in seconds relative to 'align'; "
                             "empty: the whole trial", _window,
                         "[] or [start, stop] with stop > start"),
+        "condition": Param("", "trials-table column naming the remembered item (the "
+                               "condition); empty: the first text-like label column",
+                           lambda v: isinstance(v, str), "a column name or ''"),
         "min_rate_hz": Param(0.5, "units slower than this inside the windows are left out, Hz",
                              _num(0), "a number >= 0"),
         "continuous_window_s": Param(10.0, "window length standing in for trials when the "

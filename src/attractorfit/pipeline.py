@@ -1,0 +1,253 @@
+"""The stages chained with one configuration, and the run folder.
+
+This module and ``io/`` are the only places that touch disk. Each stage takes the
+result dataclass of the stage before; :class:`RunFolder` writes every file
+atomically and never into the input's folder unless the user names it.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import platform
+import sys
+import warnings
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from attractorfit._output import atomic_writer, write_csv, write_json
+from attractorfit.config import dumps_config, resolve_config
+from attractorfit.errors import InputError
+
+__all__ = ["RunFolder", "RunResult", "run_states", "input_record", "versions",
+           "categorical_labels", "bin_for_analysis"]
+
+#: Files a run folder may hold; a folder holding anything else is not ours to overwrite.
+RUN_FILES = ("summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
+             "surrogate.nwb", "report.html", "figures", "tables")
+
+
+def versions() -> dict:
+    """Versions of attractorfit, Python and the numerical libraries (no timestamps)."""
+    import importlib.metadata as md
+
+    out = {"python": platform.python_version()}
+    for name in ("attractorfit", "numpy", "scipy", "scikit-learn", "numba", "neo", "pynwb",
+                 "matplotlib"):
+        try:
+            out[name] = md.version(name)
+        except md.PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def input_record(recording) -> dict:
+    """Files read (name, size, SHA-256) and one hash over all of them.
+
+    Only base names are kept (no absolute paths in summary.json); the combined hash
+    covers every file read, in the order read.
+    """
+    files = [{"name": os.path.basename(p["path"]), "size": int(p["size"]),
+              "sha256": p["sha256"]} for p in recording.provenance]
+    h = hashlib.sha256()
+    for f in files:
+        h.update(f["sha256"].encode())
+    return {"files": files, "sha256": h.hexdigest() if files else None}
+
+
+def categorical_labels(labels: dict, *, max_levels: int = 12) -> dict:
+    """Trial label columns that look like conditions: text, or 2..max_levels values.
+
+    Numeric columns with a distinct value in (almost) every trial, such as event
+    times, are not conditions and are left out of condition tables.
+    """
+    out = {}
+    for name, col in labels.items():
+        col = np.asarray(col)
+        n = np.unique(col.astype(str)).size
+        if 2 <= n <= max_levels:
+            out[name] = col
+    return out
+
+
+class RunFolder:
+    """The output folder of a run.
+
+    Parameters
+    ----------
+    path : str
+        Folder to write into (created if absent).
+    inputs : list of str
+        Paths of the input files; the folder must not be one of their folders
+        unless ``allow_input_folder``.
+    force : bool
+        Overwrite a folder that already holds a run.
+    """
+
+    def __init__(self, path, *, inputs=(), force=False, allow_input_folder=False):
+        self.path = os.path.abspath(os.fspath(path))
+        for p in inputs:
+            folder = os.path.abspath(p if os.path.isdir(p) else os.path.dirname(p) or ".")
+            if self.path == folder and not allow_input_folder:
+                raise InputError(f"--out {path}: that is the input's folder; choose another "
+                                 "folder for the results (inputs are never written beside)")
+        if os.path.isfile(self.path):
+            raise InputError(f"--out {path}: is a file; expected a folder")
+        if os.path.isdir(self.path) and os.listdir(self.path) and not force:
+            raise InputError(f"--out {path}: folder is not empty; use --force to overwrite "
+                             "a previous run there, or choose a new folder")
+        if force and os.path.isdir(self.path):
+            foreign = [n for n in os.listdir(self.path)
+                       if n not in RUN_FILES and not n.startswith(".")]
+            if foreign:
+                raise InputError(f"--out {path}: holds {foreign[0]!r}, which is not a run "
+                                 "output; refusing to overwrite a folder that is not a run")
+        os.makedirs(self.path, exist_ok=True)
+
+    def file(self, *parts) -> str:
+        p = os.path.join(self.path, *parts)
+        os.makedirs(os.path.dirname(p), exist_ok=True)
+        return p
+
+    def write_json(self, name, obj):
+        write_json(self.file(name), obj)
+
+    def write_csv(self, name, header, rows):
+        write_csv(self.file(name), header, rows)
+
+    def write_text(self, name, text):
+        with atomic_writer(self.file(name), "w") as fh:
+            fh.write(text)
+
+    def write_npz(self, name, **arrays):
+        with atomic_writer(self.file(name), "wb") as fh:
+            np.savez_compressed(fh, **arrays)
+
+
+@dataclass
+class RunResult:
+    """Everything a run produced (the report and the CLI are built from it)."""
+
+    config: dict
+    recording: object
+    binned: object
+    state_fit: object = None
+    discreteness: object = None
+    network_fit: object = None
+    comparison: object = None
+    summary: dict = field(default_factory=dict)
+    folder: RunFolder | None = None
+
+
+@contextmanager
+def _deterministic_threads():
+    """Pin BLAS/OpenMP pools to one thread so float reductions are reproducible."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - scikit-learn depends on it
+        yield
+        return
+    with threadpool_limits(limits=1):
+        yield
+
+
+def bin_for_analysis(recording, cfg: dict):
+    """Bin ``recording`` as the configuration's [analysis] section says."""
+    from attractorfit.binning import bin_spikes
+
+    a = cfg["analysis"]
+    window = tuple(a["window"]) if a["window"] else (None, None)
+    return bin_spikes(recording, bin_size=a["bin_size"], window=window,
+                      align=a["align"] or None, min_rate_hz=a["min_rate_hz"],
+                      continuous_window_s=a["continuous_window_s"])
+
+
+def _condition_column(binned, cfg) -> str | None:
+    name = cfg["analysis"].get("condition", "")
+    labels = categorical_labels(binned.labels)
+    if name:
+        if name not in binned.labels:
+            raise InputError(f"analysis.condition: column {name!r} is not in the trials "
+                             f"table; available: {sorted(binned.labels)}")
+        return name
+    return next(iter(labels), None)
+
+
+def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int = 1,
+               progress: bool = False, discreteness: bool = True) -> RunResult:
+    """Binning, discrete states and the discreteness test of one recording."""
+    from attractorfit.binning import BinnedCounts
+    from attractorfit.states import analyse_states, discreteness_test
+
+    cfg = resolve_config(cfg) if cfg is None or "run" not in cfg else cfg
+    rng = np.random.default_rng(np.random.SeedSequence(seed))
+    state_seed, disc_seed = np.random.SeedSequence(seed).spawn(2)
+    del rng
+    with _deterministic_threads():
+        binned = bin_for_analysis(recording, cfg)
+        cond = _condition_column(binned, cfg)
+        # condition tables only for categorical labels
+        cat = categorical_labels(binned.labels)
+        analysed = BinnedCounts(**{**binned.__dict__, "labels": cat})
+        st = cfg["states"]
+        n_states = st["n_states"] or None
+        candidates = range(st["min_states"], st["max_states"] + 1)
+        state_fit = analyse_states(analysed, n_states=n_states, candidates=candidates,
+                                   posterior_threshold=st["posterior_threshold"],
+                                   min_segment_s=st["min_segment_s"],
+                                   rng=np.random.default_rng(state_seed), n_jobs=n_jobs)
+        disc = None
+        if discreteness:
+            d = cfg["discreteness"]
+            disc = discreteness_test(analysed, n_boot=d["n_boot"], alpha=d["alpha"],
+                                     condition=cond, max_states=st["max_states"],
+                                     rng=np.random.default_rng(disc_seed), n_jobs=n_jobs,
+                                     progress=progress)
+    return RunResult(config=cfg, recording=recording, binned=analysed, state_fit=state_fit,
+                     discreteness=disc)
+
+
+def base_summary(result: RunResult, *, seed: int) -> dict:
+    """The parts of summary.json every command writes."""
+    rec, b, cfg = result.recording, result.binned, result.config
+    return {
+        "versions": versions(),
+        "seed": int(seed),
+        "input": input_record(rec),
+        "recording": {"n_units": rec.n_units, "n_trials": rec.n_trials,
+                      "duration_s": rec.duration, "n_units_analysed": b.n_units,
+                      "n_trials_analysed": b.n_trials,
+                      "pseudo_trials": bool(b.pseudo_trials),
+                      "warnings": list(rec.warnings)},
+        "analysis": {"bin_size_s": b.bin_size, "align": cfg["analysis"]["align"] or None,
+                     "window": list(cfg["analysis"]["window"]) or None,
+                     "unit_ids": list(b.unit_ids)},
+    }
+
+
+def write_state_outputs(folder: RunFolder, result: RunResult) -> None:
+    """states.csv and posteriors.npz of a state fit."""
+    sf = result.state_fit
+    folder.write_csv("states.csv", ["trial", "start", "stop", "state", "vertex"],
+                     sf.segment_rows())
+    b = result.binned
+    post = np.full((b.n_trials, b.n_bins, sf.n_states), np.nan)
+    for i, p in enumerate(sf.posteriors):
+        post[i, : len(p)] = p
+    folder.write_npz("posteriors.npz", posteriors=post, n_valid=b.n_valid,
+                     trial=b.trial_index, bin_size=np.float64(b.bin_size),
+                     window_start=b.window_start,
+                     vertices=sf.vertices.astype(np.int8))
+
+
+def print_progress_note(message: str, *, quiet: bool) -> None:
+    if not quiet:
+        print(message, file=sys.stderr)
+
+
+def suppress_library_warnings():
+    """Hide third-party deprecation chatter during a run (our own warnings stay)."""
+    warnings.filterwarnings("ignore", category=DeprecationWarning)
+    warnings.filterwarnings("ignore", category=FutureWarning)
