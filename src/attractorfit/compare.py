@@ -1020,10 +1020,37 @@ def _match_states(ref_rates, fit_rates):
     return perm
 
 
-def _default_refit(binned, n_states, rng):
-    from attractorfit.states import analyse_states
+def _refit_options(state_fit) -> dict:
+    """The data's state-analysis settings, reused when refitting surrogates."""
+    opts = {}
+    for key in ("posterior_threshold", "min_segment_s"):
+        v = getattr(state_fit, key, None)
+        if v is not None:
+            opts[key] = v
+    try:
+        n_dims = int(state_fit.n_dims)
+        if n_dims > 0:
+            opts["latent_dims"] = n_dims
+    except (AttributeError, TypeError, ValueError):
+        pass
+    model = getattr(state_fit, "model", None)
+    for key in ("sticky", "n_restarts"):
+        v = getattr(model, key, None)
+        if v is not None:
+            opts[key] = v
+    return opts
 
-    return analyse_states(binned, n_states=n_states, rng=rng)
+
+class _DefaultRefit:
+    """analyse_states with the data's state count and settings."""
+
+    def __init__(self, options):
+        self.options = options
+
+    def __call__(self, binned, n_states, rng):
+        from attractorfit.states import analyse_states
+
+        return analyse_states(binned, n_states=n_states, rng=rng, **self.options)
 
 
 # --------------------------------------------------------------------------- the work
@@ -1176,7 +1203,8 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
     refit : bool or callable
         Also refit the state model on every dataset (data and surrogates) with the
         data's state count and report the same state statistics. True uses
-        :func:`attractorfit.states.analyse_states`; a callable
+        :func:`attractorfit.states.analyse_states` with the data's posterior threshold,
+        minimum segment, latent dimension, sticky prior and restarts; a callable
         ``refit(binned, n_states, rng)`` returning an object with ``rates_hz`` and
         ``decode`` may replace it; False skips it.
     condition : str, optional
@@ -1231,7 +1259,7 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
                          f"{type(recording).__name__}")
     pos, held_out = _check_trials(trials, data.n_trials)
     if refit is True:
-        refit_fn = _default_refit
+        refit_fn = _DefaultRefit(_refit_options(state_fit))
     elif refit is False or refit is None:
         refit_fn = None
     elif callable(refit):

@@ -531,7 +531,7 @@ def bin_like(recording, like) -> BinnedCounts:
         analysis windows is shorter than the data's.
     """
     _check_recording(recording)
-    _check_binned(like)
+    _check_binned(like, "like")
     pos = {u: i for i, u in enumerate(recording.unit_ids)}
     missing = [u for u in like.unit_ids if u not in pos]
     if missing:
