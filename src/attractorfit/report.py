@@ -201,7 +201,7 @@ def _slug(text: str, used: set) -> str:
 
 
 # --------------------------------------------------------------------------- figures
-_PX_PER_INCH = 140.0  # display scale: a 7-inch (full-width) figure fills the text column
+_COLUMN_INCHES = 7.0  # a figure this wide (plots.FULL_WIDTH) fills the text column
 
 
 def _width_inches(data: bytes, mime: str):
@@ -341,7 +341,8 @@ def _block_html(block, ctx) -> str:
         ctx["n_fig"] += 1
         k = ctx["n_fig"]
         uri, inches = _figure_uri(block)
-        size = f' style="width:{inches * _PX_PER_INCH:.0f}px"' if inches else ""
+        size = (f' style="width:{min(100.0, 100.0 * inches / _COLUMN_INCHES):.1f}%"'
+                if inches else "")
         alt = block.name or block.caption or f"figure {k}"
         cap = (f"<figcaption><b>Figure {k}.</b> {_esc(block.caption)}</figcaption>"
                if block.caption else f"<figcaption><b>Figure {k}.</b></figcaption>")
