@@ -133,6 +133,8 @@ from attractorfit.surrogates import bin_like, spawn_streams, trial_groups
 __all__ = ["Comparison", "MetricResult", "NullResult", "LogRankResult", "compare",
            "logrank_test", "ks_statistic", "total_variation"]
 
+#: Relative tolerance under which two statistics count as equal (floating-point rounding).
+_TIE = 1e-10
 #: Fewest surrogates for which the reference percentiles are trusted.
 MIN_SURROGATES = 20
 CAUTION = ("These are statistical statements about models of the recording, not proof "
@@ -638,9 +640,10 @@ def _judge(name, value, reference, boots):
     b_ok = boots[np.isfinite(boots)]
     ci = np.quantile(b_ok, [0.025, 0.975]) if b_ok.size else np.full(2, np.nan)
     if np.isfinite(value) and ref_ok.size:
-        worse = np.sum(ref_ok >= value) if dist else np.sum(ref_ok <= value)
+        tol = _TIE * max(1.0, abs(value))            # rounding of equal statistics
+        worse = np.sum(ref_ok >= value - tol) if dist else np.sum(ref_ok <= value + tol)
         p = float((1 + worse) / (ref_ok.size + 1))
-        consistent = bool(value <= ref) if dist else bool(value >= ref)
+        consistent = bool(value <= ref + tol) if dist else bool(value >= ref - tol)
     else:
         p, consistent = float("nan"), None
     what = _words(name)
@@ -1246,9 +1249,6 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
     count_window_s = check_positive("count_window_s", count_window_s)
     S, ref_rates = _state_count(state_fit, data.n_units)
     model = _prepare(surrogates, data, "surrogates", 2)
-    if len(model) < MIN_SURROGATES:
-        warn_input(f"surrogates: {len(model)} surrogates; the reference percentiles need "
-                   f"at least {MIN_SURROGATES} to be trusted")
     if nulls is not None and not isinstance(nulls, dict):
         raise InputError(f"nulls: expected a dict {{name: list of surrogates}}, got "
                          f"{type(nulls).__name__}")
@@ -1299,6 +1299,9 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
         for i, (_, rec) in enumerate(items):
             positions(rec, f"nulls[{nm!r}][{i}]")
     has_cv = recording is not None and all(rec is not None for _, rec in model)
+    if len(model) < MIN_SURROGATES:
+        warn_input(f"surrogates: {len(model)} surrogates; the reference percentiles need "
+                   f"at least {MIN_SURROGATES} to be trusted")
 
     jobs = [(data, recording if has_cv else None, True)]
     jobs += [(b, rec if has_cv else None, True) for b, rec in model]
