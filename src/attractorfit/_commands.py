@@ -183,6 +183,9 @@ def _states(args) -> int:
         summary["discreteness"] = res.discreteness.summary_block()
     pipeline.write_state_outputs(folder, res)
     folder.write_text("config.toml", pipeline.dumps_config(cfg))
+    from attractorfit._figures import write_figures_and_report
+
+    write_figures_and_report(folder, res, title="attractorfit: discrete states")
     folder.write_json("summary.json", summary)
     if not args.quiet:
         sf = res.state_fit
