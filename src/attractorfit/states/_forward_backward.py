@@ -26,7 +26,7 @@ from numba import njit
 __all__ = ["forward_backward", "forward_loglik", "viterbi"]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _scaled_emissions(log_b, t0, t1, b):
     """Fill ``b[0:T]`` with exp(log_b - row max); return the sum of row maxima."""
     S = log_b.shape[1]
@@ -42,7 +42,7 @@ def _scaled_emissions(log_b, t0, t1, b):
     return shift
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, start_sum):
     """Scaled forward-backward over stacked sequences.
 
@@ -139,7 +139,7 @@ def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, st
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def forward_loglik(log_b, offsets, startprob, transmat):
     """Total log-likelihood of stacked sequences by the scaled forward pass only."""
     S = log_b.shape[1]
@@ -179,7 +179,7 @@ def forward_loglik(log_b, offsets, startprob, transmat):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def viterbi(log_b, offsets, log_startprob, log_transmat, path):
     """Most probable state path of each stacked sequence (written into ``path``).
 

@@ -45,6 +45,8 @@ _EVAL_FLOOR = 1e-300
 _EMPTY_STATE = 1e-6
 #: k-means initialisation runs on at most this many randomly chosen bins.
 _INIT_MAX_BINS = 4000
+#: k-means++ seedings per k-means initialisation (the lowest inertia is kept).
+_KMEANS_N_INIT = 4
 #: EM iterations every restart runs before only the best one is continued.
 _SCREEN_ITER = 10
 #: Width (s.d., bins) of the Gaussian smoothing applied before k-means initialisation.
@@ -509,7 +511,7 @@ def _initial_params(data, smooth, S, kind, seed):
             sub = smooth[np.sort(r.choice(data.n_bins, size=_INIT_MAX_BINS, replace=False))]
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # duplicate points with tiny data
-            km = KMeans(n_clusters=S, n_init=1, max_iter=50,
+            km = KMeans(n_clusters=S, n_init=_KMEANS_N_INIT, max_iter=50,
                         random_state=int(r.integers(2**31 - 1))).fit(sub)
         centres = km.cluster_centers_
     else:

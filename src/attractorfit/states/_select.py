@@ -13,13 +13,16 @@ from sklearn.exceptions import ConvergenceWarning
 
 from attractorfit._validation import check_int, check_nonnegative, check_rng
 from attractorfit.errors import InputError
-from attractorfit.states._hmm import PoissonHMM, _CountData, check_count_sequences
+from attractorfit.states._hmm import (PoissonHMM, _CountData, check_count_sequences,
+                                      single_thread)
 
 __all__ = ["StateCountChoice", "choose_n_states", "RULES"]
 
 #: Rules understood by :func:`choose_n_states`.
 RULES = ("bic", "icl", "heldout", "heldout_1se")
 _NEEDS_FOLDS = ("heldout", "heldout_1se")
+#: Default sticky prior of :func:`choose_n_states` (see the module docstring).
+DEFAULT_STICKY = 0.2
 
 
 def _trial_folds(n_trials: int, n_folds, rng) -> list:
@@ -163,7 +166,7 @@ def _one_se(per_trial: np.ndarray) -> tuple:
 
 
 def choose_n_states(sequences, *, candidates=range(1, 9), rule="bic", n_folds=5,
-                    sticky=0.0, n_restarts=3, max_iter=100, tol=1e-4, fast=False, rng=None,
+                    sticky=DEFAULT_STICKY, n_restarts=3, max_iter=100, tol=1e-4, fast=False, rng=None,
                     n_jobs=1) -> StateCountChoice:
     """Fit Poisson HMMs with each candidate number of states and choose one.
 
@@ -194,7 +197,8 @@ def choose_n_states(sequences, *, candidates=range(1, 9), rule="bic", n_folds=5,
         stream from ``SeedSequence.spawn``, so the result does not depend on
         ``n_jobs``.
     n_jobs : int
-        Parallel fits (joblib); 1 runs serially.
+        Parallel fits (joblib threads; the compiled kernels and BLAS release the
+        GIL); 1 runs serially. BLAS is pinned to one thread per fit either way.
 
     Returns
     -------
@@ -251,12 +255,16 @@ def choose_n_states(sequences, *, candidates=range(1, 9), rule="bic", n_folds=5,
             return _full_task(seqs, S, seed, opts)
         return _fold_task(seqs, S, folds[f], seed, opts)
 
-    if n_jobs == 1 or len(tasks) == 1:
-        results = [run(t) for t in tasks]
-    else:
-        from joblib import Parallel, delayed
+    with single_thread():
+        if n_jobs == 1 or len(tasks) == 1:
+            results = [run(t) for t in tasks]
+        else:
+            from joblib import Parallel, delayed
 
-        results = Parallel(n_jobs=n_jobs)(delayed(run)(t) for t in tasks)
+            # threads: the compiled kernels and BLAS release the GIL, and threads
+            # start instantly and share the data (processes would copy it)
+            results = Parallel(n_jobs=n_jobs, prefer="threads")(delayed(run)(t)
+                                                                for t in tasks)
 
     n_c = len(cands)
     loglik, entropy = np.empty(n_c), np.empty(n_c)
