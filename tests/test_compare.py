@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
+from attractorfit._output import dumps_json
 from attractorfit.binning import BinnedCounts, bin_spikes
 from attractorfit.compare import (centred_rate_r2, compare, ks_statistic, logrank_test,
                                   total_variation)
@@ -165,6 +166,8 @@ def test_same_process_is_consistent(world):
         assert key in blk
     assert blk["n_surrogates"] == 20
     assert "not proof about the brain" in blk["caution"]
+    text = dumps_json({"comparison": blk})          # the run folder's writer accepts it
+    assert '"occupancy_tvd_ref95"' in text and "NaN" not in text
 
 
 @pytest.mark.parametrize("change", ["dwell", "rates", "occupancy"])
@@ -303,6 +306,8 @@ def test_network_better_than_trial_shuffle(spikes):
     assert "isi_cv_ks" in c.metrics                      # spike times given on both sides
     blk = c.summary_block()["nulls"]["shuffle"]
     assert blk["verdict"] == "network_better"
+    assert res.occupancy.shape == (S,) and res.occupancy_ci.shape == (S, 2)
+    assert res.samples["fano"].shape == (20, 12) and res.samples["isi_cv"].shape == (20, 12)
 
 
 def test_null_better_when_the_network_is_wrong(spikes):

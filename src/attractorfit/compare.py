@@ -685,6 +685,14 @@ class NullResult:
     skipped : list of str
         Statistics the null keeps by construction (not compared).
     text : str
+    occupancy : ndarray (S,)
+        Mean occupancy of the null surrogates (data's state model), for figures.
+    occupancy_ci : ndarray (S, 2)
+        2.5 and 97.5 percentiles over single null surrogates.
+    mean_dwell_s : ndarray (S,)
+        Mean over null surrogates of the Kaplan-Meier mean dwell times.
+    samples : dict of str to ndarray or None
+        ``fano`` (C, N), ``isi_cv`` (C, N) or None, ``correlation`` (C, P).
     """
 
     name: str
@@ -698,6 +706,10 @@ class NullResult:
     used: list
     skipped: list
     text: str
+    occupancy: np.ndarray = None
+    occupancy_ci: np.ndarray = None
+    mean_dwell_s: np.ndarray = None
+    samples: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         return {"description": self.description, "n_surrogates": self.n_surrogates,
@@ -705,6 +717,8 @@ class NullResult:
                 "p_network_better": self.p_network_better,
                 "p_null_better": self.p_null_better, "statistics": list(self.used),
                 "not_compared": list(self.skipped),
+                "occupancy": [float(v) for v in self.occupancy],
+                "mean_dwell_s": [float(v) for v in self.mean_dwell_s],
                 "text": self.text,
                 "per_statistic": {k: dict(v) for k, v in self.scores.items()}}
 
@@ -1172,9 +1186,16 @@ def _compare_null(null_name, null_sums, data_sum, model_ens, model_loo, model_fu
         text += (" Not compared, because the null keeps them by construction: "
                  + ", ".join(_words(n) for n in skipped) + ".")
     text += " " + CAUTION
+    cv = None if any(x.cv is None for x in ens.items) else \
+        np.array([x.cv for x in ens.items])
+    samples = {"fano": np.array([x.fano for x in ens.items]), "isi_cv": cv,
+               "correlation": np.array([x.corr for x in ens.items])}
     return NullResult(name=null_name, description=words, n_surrogates=ens.B, scores=scores,
                       score=score, p_network_better=p_net, p_null_better=p_null,
-                      verdict=verdict, used=used, skipped=skipped, text=text)
+                      verdict=verdict, used=used, skipped=skipped, text=text,
+                      occupancy=full["occ"],
+                      occupancy_ci=np.nanquantile(ens.occ, [0.025, 0.975], axis=0).T,
+                      mean_dwell_s=full["mdw"], samples=samples)
 
 
 def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=None,
