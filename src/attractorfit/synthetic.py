@@ -218,7 +218,8 @@ def continuous_latent_recording(*, n_units: int = 60, n_latents: int = 1, n_tria
                                 loading_scale: float = 0.6, rate_range=(2.0, 25.0),
                                 link: str = "exp", gamma_order: float = 1.0,
                                 grid_dt: float = 0.005, latent_dist: str = "gaussian",
-                                drift: float = 0.0, iti: float = 0.5, rng=None):
+                                drift: float = 0.0, iti: float = 0.5, n_conditions: int = 1,
+                                psth_modulation: float = 0.0, rng=None):
     """Trials driven by continuous Ornstein-Uhlenbeck latents: no discrete states.
 
     Rates are ``base_i * f(w_i . z(t))`` with ``f`` = exp (``link="exp"``) or a
@@ -226,6 +227,10 @@ def continuous_latent_recording(*, n_units: int = 60, n_latents: int = 1, n_tria
     is NOT offered on purpose: every latent here is unimodal (``gaussian`` or
     ``laplace``-like heavy tails via a cubic map). ``drift`` adds a slow linear
     change of every unit's log-rate across trials (total change in log units).
+    ``psth_modulation`` > 0 adds a condition-specific time course to every unit's
+    log-rate (three Gaussian bumps of 0.3 s s.d. with random centres and N(0, 1)
+    amplitudes, scaled by ``psth_modulation``); trial k has condition
+    ``k % n_conditions``, stored in the trials-table column ``item``.
 
     Returns
     -------
@@ -238,6 +243,15 @@ def continuous_latent_recording(*, n_units: int = 60, n_latents: int = 1, n_tria
     base = np.exp(rng.uniform(np.log(lo), np.log(hi), size=n_units))
     w = rng.standard_normal((n_units, n_latents)) * loading_scale / np.sqrt(n_latents)
     unit_drift = rng.standard_normal(n_units) * drift
+    n_conditions = check_int("n_conditions", n_conditions, low=1)
+    t_grid = (np.arange(n_steps) + 0.5) * grid_dt
+    psth = np.zeros((n_conditions, n_steps, n_units))
+    if psth_modulation > 0:
+        for c in range(n_conditions):
+            centres = rng.uniform(0, trial_duration, size=(3, n_units))
+            amps = rng.standard_normal((3, n_units))
+            bumps = np.exp(-0.5 * ((t_grid[:, None, None] - centres[None]) / 0.3) ** 2)
+            psth[c] = psth_modulation * np.sum(amps[None] * bumps, axis=1)
     a = np.exp(-grid_dt / timescale_s)
     truth = SyntheticTruth(state_rates_hz=None, trial_duration=trial_duration,
                            grid_dt=grid_dt)
@@ -254,6 +268,8 @@ def continuous_latent_recording(*, n_units: int = 60, n_latents: int = 1, n_tria
             z = np.sign(z) * np.abs(z) ** 1.5 / 1.3
         truth.latents.append(z)
         drive = z @ w.T + unit_drift[None, :] * (k / max(n_trials - 1, 1) - 0.5)
+        if psth_modulation > 0:
+            drive = drive + psth[k % n_conditions]
         if link == "exp":
             lam = base[None, :] * np.exp(drive)
         else:
@@ -263,6 +279,8 @@ def continuous_latent_recording(*, n_units: int = 60, n_latents: int = 1, n_tria
             all_t.append(t)
             all_u.append(np.full(t.size, i))
     trials = {"start": starts, "stop": starts + trial_duration}
+    if n_conditions > 1:
+        trials["item"] = np.arange(n_trials) % n_conditions
     rec = Recording.from_arrays(np.concatenate(all_t), np.concatenate(all_u),
                                 unit_ids=[str(i) for i in range(n_units)], trials=trials,
                                 metadata={"source": "synthetic-continuous"},

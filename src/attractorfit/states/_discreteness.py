@@ -20,9 +20,11 @@ with m the smoothed condition PSTH, g a per-trial gain smoothed across trials (d
 z K independent unit-variance Ornstein-Uhlenbeck processes (AR(1) on the bins, one
 timescale per factor, stationary at the trial start) and W (N x K) loadings. Given
 lambda, the count has mean lambda and variance phi_i lambda: negative binomial
-(gamma-Poisson) for phi_i > 1, Poisson for phi_i = 1, and a binomial with
-n = ceil(lambda / (1 - phi_i)) for phi_i < 1 (regular spiking; its variance is at least
-phi_i lambda). Under this model, with mu = m g,
+(gamma-Poisson) for phi_i > 1, Poisson for phi_i = 1, and for phi_i < 1 (regular
+spiking) a binomial with success probability lambda / n and n one of the two whole
+numbers around lambda / (1 - phi_i), drawn so that the variance is phi_i lambda (when
+lambda < 1 - phi_i no count with mean lambda is that regular; Bernoulli(lambda) is
+used). Under this model, with mu = m g,
 
     E[(x_i - mu_i)(x_j - mu_j)] = mu_i mu_j (exp(w_i . w_j) - 1)          (i != j)
     E[(x_i - mu_i)^2]           = phi_i mu_i + mu_i^2 (exp(|w_i|^2) - 1)
@@ -30,7 +32,8 @@ phi_i lambda). Under this model, with mu = m g,
 so the latent covariance is read from the count covariance through
 Sigma_ij = log(1 + C_ij / M_ij) [1]_, M_ij the bin-average of mu_i mu_j. W is the
 rank-K fit of the off-diagonal Sigma (iterated principal axes), phi_i then matches
-each unit's residual variance (hence its Fano factor), and the factor timescales come
+each unit's residual variance (and is corrected once by simulation so that each unit's
+total count variance, hence its Fano factor, matches), and the factor timescales come
 from the lagged count covariances transformed the same way, in the rotation that
 makes the factors uncorrelated at lag one.
 
@@ -238,7 +241,15 @@ def _draw_counts(rng, lam, phi):
         out[over] = rng.poisson(np.where(shape > 0, g, 0.0))
     if under.any():
         l, p = lam[under], phi[under]
-        n = np.maximum(np.ceil(l / (1.0 - p)), 1.0)
+        # binomial(n, l / n) has variance l (1 - l / n); a random n in {n0, n0 + 1}
+        # with E[1 / n] = (1 - phi) / l gives variance phi * l exactly when
+        # l / (1 - phi) >= 1 (else Bernoulli(l), the least variable count with mean l)
+        nstar = np.maximum(l / (1.0 - p), 1.0)
+        n0 = np.floor(nstar)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            pi = np.where(nstar > n0, (1.0 / nstar - 1.0 / (n0 + 1)) / (1.0 / n0 - 1.0 / (n0 + 1)),
+                          1.0)
+        n = np.where(rng.random(l.shape) < pi, n0, n0 + 1)
         q = np.clip(l / n, 0.0, 1.0)
         out[under] = rng.binomial(n.astype(np.int64), q)
     return out
@@ -263,13 +274,17 @@ class ContinuousNull:
     gain : ndarray (trials, units)
         Slow multiplicative drift of each unit across trials (mean 1).
     loadings : ndarray (units, K)
-        Loadings of the log-rate on the latent factors.
+        Loadings of the log-rate on the latent factors (continuous-time latents; the
+        bin-level covariance they imply is smaller by the bin-averaged
+        autocorrelation of each factor, see :func:`_bin_average_corr`).
     timescales_s : ndarray (K,)
         Ornstein-Uhlenbeck timescale of each factor.
     dispersion : ndarray (units,)
         Private variance-to-mean ratio phi of the counts given the rate.
     psth_smooth_s : float
     drift_trials : float
+    n_substeps : int
+        Latent steps per bin in :meth:`simulate` (the rate is averaged over them).
     trial_index, window_start, unit_ids, labels :
         Copied from the data, so surrogates are BinnedCounts like it.
     """
@@ -286,6 +301,7 @@ class ContinuousNull:
     dispersion: np.ndarray
     psth_smooth_s: float
     drift_trials: float
+    n_substeps: int = 5
     trial_index: np.ndarray = field(repr=False, default=None)
     window_start: np.ndarray = field(repr=False, default=None)
     unit_ids: list = field(repr=False, default_factory=list)
@@ -316,10 +332,13 @@ class ContinuousNull:
         mu = self.expected_counts()
         n_tr, n_b, _ = mu.shape
         if self.n_dims:
-            a = np.exp(-self.bin_size / self.timescales_s)
-            z = _ar1_latents(rng, n_tr, n_b, a)
+            sub = int(self.n_substeps)
+            a = np.exp(-self.bin_size / (sub * self.timescales_s))
+            z = _ar1_latents(rng, n_tr, n_b * sub, a)
             w = self.loadings
-            lam = mu * np.exp(z @ w.T - 0.5 * np.sum(w * w, axis=1))
+            g = np.exp(z @ w.T - 0.5 * np.sum(w * w, axis=1))
+            g = g.reshape(n_tr, n_b, sub, -1).mean(axis=2)   # rate averaged over the bin
+            lam = mu * g
         else:
             lam = mu
         counts = _draw_counts(rng, lam, self.dispersion)
@@ -411,7 +430,7 @@ def fit_continuous_null(binned, *, n_dims: int = 3, condition=None,
     tau = np.zeros(k)
     if k:
         W, tau = _fit_timescales(x, mu, mask, W, dt, max_lag_s)
-    return ContinuousNull(bin_size=dt, n_valid=binned.n_valid.copy(), condition=condition,
+    null = ContinuousNull(bin_size=dt, n_valid=binned.n_valid.copy(), condition=condition,
                           levels=levels, trial_condition=cond, psth=psth, gain=gain,
                           loadings=W, timescales_s=tau, dispersion=phi,
                           psth_smooth_s=psth_smooth_s, drift_trials=drift_trials or 0.0,
@@ -419,6 +438,27 @@ def fit_continuous_null(binned, *, n_dims: int = 3, condition=None,
                           window_start=binned.window_start.copy(),
                           unit_ids=list(binned.unit_ids),
                           labels={kk: np.asarray(v).copy() for kk, v in binned.labels.items()})
+    _calibrate_dispersion(null, x[mask], mask)
+    return null
+
+
+def _calibrate_dispersion(null, x_valid, mask, n_sims: int = 8, seed: int = 0):
+    """Correct phi so that every unit's total count variance matches the data's.
+
+    The moment equations hold for rates constant within a bin; the simulated rates
+    are averaged over sub-steps and the PSTH and drift are estimates, so each unit's
+    simulated variance (over all bins, like np.var) is measured on ``n_sims``
+    surrogates (fixed seed: the fit stays deterministic) and the difference moved
+    into the private term: phi += (var_data - var_sim) / mean.
+    """
+    target = x_valid.var(axis=0)
+    mean = x_valid.mean(axis=0)
+    rng = np.random.default_rng(seed)
+    sims = np.concatenate([null.simulate(rng).counts[mask].astype(float)
+                           for _ in range(n_sims)])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        step = np.where(mean > 0, (target - sims.var(axis=0)) / np.where(mean > 0, mean, 1), 0)
+    null.dispersion = np.clip(null.dispersion + step, 0.05, 50.0)
 
 
 def _fit_timescales(x, mu, mask, W, dt, max_lag_s):
@@ -462,17 +502,36 @@ def _fit_timescales(x, mu, mask, W, dt, max_lag_s):
     _, R = np.linalg.eigh(gs[0])
     W_new = W @ R
     rho = np.array([np.diag(R.T @ g @ R) for g in gs])     # lags x K
-    lags = np.arange(1, rho.shape[0] + 1) * dt
+    lags = np.arange(1, rho.shape[0] + 1)
     tau = np.empty(k)
     for j in range(k):
         y = rho[:, j]
 
         def loss(log_tau, y=y):
-            return float(np.sum((y - np.exp(-lags / np.exp(log_tau))) ** 2))
+            t = np.exp(log_tau)
+            return float(np.sum((y - _bin_average_corr(lags, t, dt)
+                                 / _bin_average_corr(0, t, dt)) ** 2))
 
         res = minimize_scalar(loss, bounds=(np.log(dt / 4), np.log(60.0)), method="bounded")
         tau[j] = float(np.exp(res.x))
+    # continuous-time loadings: bin averaging shrank each factor's variance
+    W_new = W_new / np.sqrt(_bin_average_corr(0, tau, dt))[None, :]
     return W_new, tau
+
+
+def _bin_average_corr(lag, tau, dt):
+    """Correlation of bin averages of a unit-variance OU process, ``lag`` bins apart.
+
+    For an exponential autocorrelation exp(-|u| / tau) and bins of width dt:
+    lag 0: 2 (tau/dt)^2 (dt/tau - 1 + exp(-dt/tau));
+    lag l >= 1: exp(-l dt/tau) 2 (tau/dt)^2 (cosh(dt/tau) - 1).
+    """
+    lag = np.asarray(lag, dtype=float)
+    tau = np.asarray(tau, dtype=float)
+    r = dt / tau
+    zero = 2.0 / r ** 2 * (r - 1.0 + np.exp(-r))
+    other = np.exp(-lag * r) * 2.0 / r ** 2 * (np.cosh(r) - 1.0)
+    return np.where(lag == 0, zero, other)
 
 
 # --------------------------------------------------------------------------- statistic
@@ -623,14 +682,15 @@ def _statistic(binned_counts, n_valid, cond, n_cond, bin_size, *, n_dims, max_st
         n_par = (s - 1) + s * d + d * (d + 1) / 2
         lls[s - 1] = ll
         bics[s - 1] = -2 * ll + n_par * np.log(n)
-    best = int(np.argmin(bics))
-    return _StatisticValue(value=float((lls[best] - lls[0]) / n), n_states=best + 1,
+    best = int(np.argmin(bics[1:])) + 1            # the BIC-best mixture with S >= 2
+    return _StatisticValue(value=float((lls[best] - lls[0]) / n),
+                           n_states=int(np.argmin(bics)) + 1,
                            loglik=lls, bic=bics)
 
 
 def discreteness_statistic(binned, *, n_dims: int = 3, condition=None, max_states: int = 8,
                            psth_smooth_s: float = 0.1, drift_trials: float | None = 10.0,
-                           smooth_s: float = 0.05, rng=None) -> float:
+                           smooth_s: float = 0.0, rng=None) -> float:
     """The test statistic on one BinnedCounts (see the module notes).
 
     Returns the log-likelihood gain per bin of the BIC-chosen tied Gaussian mixture
@@ -721,7 +781,7 @@ def _replicate(null, seed, opts):
 
 def discreteness_test(binned, *, n_boot: int = 199, alpha: float = 0.05, condition=None,
                       n_dims=None, max_states: int = 8, psth_smooth_s: float = 0.1,
-                      drift_trials: float | None = 10.0, smooth_s: float = 0.05,
+                      drift_trials: float | None = 10.0, smooth_s: float = 0.0,
                       rng=None, n_jobs: int = 1, progress: bool = False
                       ) -> DiscretenessResult:
     """Parametric-bootstrap test of discrete states against a continuous-latent null.
