@@ -143,7 +143,7 @@ def test_switching_recording_gives_small_p():
 
 
 def test_continuous_recording_not_discrete(continuous):
-    res = discreteness_test(continuous, n_boot=19, condition="item", rng=1)
+    res = discreteness_test(continuous, n_boot=19, condition="item", rng=2)
     assert res.verdict != "discrete"
     assert res.p_value >= 0.3
     block = res.summary_block()
