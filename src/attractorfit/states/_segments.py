@@ -99,6 +99,15 @@ def kaplan_meier(durations, observed) -> SurvivalCurve:
     Returns
     -------
     SurvivalCurve
+
+    Examples
+    --------
+    >>> from attractorfit.states import kaplan_meier
+    >>> km = kaplan_meier([0.1, 0.2, 0.2, 0.3], [True, True, False, True])
+    >>> km.survival.round(3).tolist()
+    [0.75, 0.5, 0.0]
+    >>> round(km.restricted_mean, 3)
+    0.225
     """
     d = np.asarray(durations, dtype=float).ravel()
     o = np.asarray(observed, dtype=bool).ravel()

@@ -74,6 +74,11 @@ def codes_to_text(codes) -> list:
 
     Spreadsheets read ``+-+`` as a formula, hence letters (DESIGN.md, Amendment 6).
     A row of length 0 (no code) gives ``""``.
+
+    Examples
+    --------
+    >>> codes_to_text([[1, -1, 1], [-1, -1, -1]])
+    ['HLH', 'LLL']
     """
     codes = np.asarray(codes)
     if codes.ndim != 2:
