@@ -109,6 +109,8 @@ def test_errors(recording, chosen):
         analyse_states(b, n_states=0)
     with pytest.raises(InputError, match="min_segment_s: expected a finite number >= 0"):
         analyse_states(b, n_states=2, min_segment_s=-0.1)
+    with pytest.raises(InputError, match="n_jobs: expected a whole number >= 1"):
+        analyse_states(b, n_states=2, n_jobs=0)
     with pytest.raises(InputError, match="binned: expected a BinnedCounts, got ndarray"):
         chosen.decode(np.zeros((2, 3, 4)))
     with pytest.raises(InputError, match="binned: bin size 0.1 s, the state model was "

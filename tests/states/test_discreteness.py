@@ -199,5 +199,13 @@ def test_errors(continuous):
         discreteness_statistic(continuous, n_dims=0)
     with pytest.raises(InputError, match="psth_smooth_s: expected a finite number >= 0"):
         fit_continuous_null(continuous, psth_smooth_s=-1.0)
+    with pytest.raises(InputError, match="psth_smooth_s: expected a finite number >= 0"):
+        discreteness_test(continuous, psth_smooth_s=-1.0)
+    with pytest.raises(InputError, match="max_states: expected a whole number >= 2"):
+        discreteness_statistic(continuous, n_dims=1, max_states=1)
+    with pytest.raises(InputError, match="n_dims: expected a whole number <= 29"):
+        fit_continuous_null(continuous, n_dims=30)
+    with pytest.raises(InputError, match="drift_trials: expected a finite number > 0"):
+        fit_continuous_null(continuous, drift_trials=-2.0)
     with pytest.raises(InputError, match="max_lag_s: expected a finite number > 0"):
         fit_continuous_null(continuous, max_lag_s=0.0)

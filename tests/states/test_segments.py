@@ -168,5 +168,7 @@ def test_decode_errors():
                           label_to_state={"x": {1: 5}})
     with pytest.raises(InputError, match=r"trial_index: expected 1 entries"):
         find_segments([np.array([0])], bin_size=0.1, trial_index=[1, 2])
+    with pytest.raises(InputError, match="n_states: expected a whole number >= 1"):
+        decode_posteriors(good, bin_size=0.1, n_states=0)
     with pytest.raises(InputError, match="min_bins: expected a whole number >= 1"):
         assign_bins(good, min_bins=0)

@@ -116,6 +116,8 @@ def test_errors():
         cube_r2(np.ones((2, 3)), np.ones((3, 1)))
     with pytest.raises(InputError, match="n_dims: expected a whole number >= 2"):
         assign_vertex_codes(np.ones((4, 3)), n_dims=1)
+    with pytest.raises(InputError, match="n_dims: expected a whole number <= 8"):
+        assign_vertex_codes(np.ones((4, 3)), n_dims=9)
     with pytest.raises(InputError, match="codes: expected a 2-dimensional array"):
         codes_to_text(np.ones(3))
     rng = np.random.default_rng(0)

@@ -98,7 +98,13 @@ MIN_BINS = 500
 
 # --------------------------------------------------------------------------- helpers
 def p_value(statistic: float, null_statistics) -> float:
-    """Parametric-bootstrap p-value (1 + #{T_b >= T}) / (B + 1) [2]_."""
+    """Parametric-bootstrap p-value (1 + #{T_b >= T}) / (B + 1) [2]_.
+
+    Examples
+    --------
+    >>> p_value(1.0, [0.5, 1.0, 2.0])
+    0.75
+    """
     t = np.asarray(null_statistics, dtype=float)
     return float((1 + np.sum(t >= statistic)) / (t.size + 1))
 

@@ -516,8 +516,10 @@ def decode_posteriors(posteriors, *, bin_size: float, n_states=None, trial_index
     -------
     StateDecoding
     """
+    if n_states is not None:
+        n_states = check_int("n_states", n_states, low=1)
     post = _check_posteriors(posteriors, n_states)
-    s_count = post[0].shape[1] if n_states is None else check_int("n_states", n_states, low=1)
+    s_count = post[0].shape[1] if n_states is None else n_states
     bin_size = check_positive("bin_size", bin_size)
     min_segment_s = check_nonnegative("min_segment_s", min_segment_s)
     mb = min_segment_bins(min_segment_s, bin_size)
