@@ -40,6 +40,33 @@ def register(sub) -> None:
                         "every bootstrap surrogate and takes most of the time)")
     p.set_defaults(func=_states)
 
+    p = sub.add_parser(
+        "run", help="the whole job: states, discreteness test, network fit, surrogates, "
+                    "comparison, report",
+        description="Run every stage on one recording: binning, discrete states with vertex "
+                    "codes, the discreteness test, a low-rank spiking network fitted so its "
+                    "attractors reproduce the states' occupancy and dwell times, surrogate "
+                    "recordings from it and from null models, the model-vs-data comparison on "
+                    "held-out trials, figures and report.html. Writes the run folder "
+                    "(summary.json, states.csv, posteriors.npz, model.npz, surrogate.nwb, "
+                    "config.toml, figures/, tables/, report.html).")
+    _add_load_options(p)
+    _add_run_options(p)
+    p.set_defaults(func=_run)
+
+    p = sub.add_parser(
+        "demo", help="run the whole job on the bundled sample recording",
+        description="Run 'attractorfit run' on the bundled sample recording (an invented "
+                    "task: a mouse holds which of four reward ports was cued across a 3 s "
+                    "delay; 96 units) with the settings in the bundled demo.toml, and print "
+                    "where the report is.")
+    p.add_argument("--out", metavar="DIR", default=None,
+                   help="folder for the results (default: ./attractorfit_demo)")
+    p.add_argument("--seed", type=int, default=None, metavar="N", help="seed (default 0)")
+    p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes")
+    p.add_argument("--quiet", action="store_true", help="no progress notes")
+    p.set_defaults(func=_demo)
+
 
 def _add_load_options(p) -> None:
     p.add_argument("path", help="recording: an NWB, NIX, CSV/TSV or NPZ file, a sorter "
@@ -194,6 +221,77 @@ def _states(args) -> int:
         if res.discreteness is not None:
             print(res.discreteness.text())
     return 0
+
+
+def _run(args) -> int:
+    from attractorfit import pipeline
+
+    cfg, seed, out = _resolve(args)
+    folder = pipeline.RunFolder(out, inputs=[args.path] + ([args.trials] if args.trials else []),
+                                force=args.force)
+    rec = load_from_args(args)
+    return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
+                          progress=not args.quiet)
+
+
+def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress) -> int:
+    import time
+
+    from attractorfit import pipeline
+    from attractorfit._figures import write_figures_and_report
+
+    t0 = time.perf_counter()
+    if progress:
+        print(f"attractorfit: {rec}; finding states", file=sys.stderr)
+    res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=jobs, progress=progress and
+                              sys.stderr.isatty())
+    pipeline.run_model(res, seed=seed, n_jobs=jobs, progress=progress)
+    summary = pipeline.base_summary(res, seed=seed)
+    summary["states"] = res.state_fit.summary_block()
+    summary["discreteness"] = res.discreteness.summary_block()
+    summary["model"] = res.network_fit.summary_block()
+    summary["comparison"] = res.comparison.summary_block()
+    pipeline.write_state_outputs(folder, res)
+    pipeline.write_model_outputs(folder, res)
+    folder.write_text("config.toml", pipeline.dumps_config(cfg))
+    if progress:
+        print("attractorfit: writing figures and report", file=sys.stderr)
+    write_figures_and_report(folder, res)
+    folder.write_json("summary.json", summary)
+    if not quiet:
+        sf, d, c = res.state_fit, res.discreteness, res.comparison.summary_block()
+        print(f"{sf.n_states} states, vertex codes {', '.join(sf.vertex_text)}; "
+              f"discreteness: {d.verdict} (p = {d.p_value:.3g})")
+        print(f"fitted network vs held-out data: occupancy TVD {c.get('occupancy_tvd', float('nan')):.3f} "
+              f"(reference {c.get('occupancy_tvd_ref95', float('nan')):.3f}), unit-rate R^2 "
+              f"{c.get('rate_r2', float('nan')):.3f}")
+        print(f"report: {folder.file('report.html')}  ({time.perf_counter() - t0:.0f} s)")
+    return 0
+
+
+def _demo(args) -> int:
+    import importlib.resources as resources
+    import os
+
+    from attractorfit import pipeline
+    from attractorfit.config import load_config
+    from attractorfit.errors import InputError
+    from attractorfit.io import load
+
+    data = resources.files("attractorfit.sample_data")
+    path = str(data / "ports_session.nwb")
+    cfg = load_config(str(data / "demo.toml"))
+    if args.seed is not None:
+        if args.seed < 0:
+            raise InputError(f"--seed: expected a whole number >= 0, got {args.seed}")
+        cfg["run"]["seed"] = args.seed
+    if args.jobs < 1:
+        raise InputError(f"--jobs: expected a whole number >= 1, got {args.jobs}")
+    out = args.out or os.path.join(os.getcwd(), "attractorfit_demo")
+    folder = pipeline.RunFolder(out, inputs=[path], force=True)
+    rec = load(path)
+    return _run_recording(rec, cfg, int(cfg["run"]["seed"]), folder, jobs=args.jobs,
+                          quiet=args.quiet, progress=not args.quiet)
 
 
 def _levels(col) -> str:

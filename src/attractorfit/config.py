@@ -91,6 +91,43 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "alpha": Param(0.05, "significance level of the verdict", _num(0, 0.5, lo_open=True),
                        "a number in (0, 0.5]"),
     },
+    "network": {
+        "rule": Param("pseudoinverse", "decoder rule: 'pseudoinverse' (projection rule), "
+                                       "'optimized' (least readout noise, stability margins) "
+                                       "or 'hebbian'",
+                      _choice("pseudoinverse", "optimized", "hebbian"),
+                      "one of pseudoinverse, optimized, hebbian"),
+        "hypercube": Param(False, "each model neuron reads one latent axis only (hypercube "
+                                  "encoder)", lambda v: isinstance(v, bool), "true or false"),
+        "extra_neurons": Param(0, "unrecorded model neurons added to lower readout shot "
+                                  "noise (never part of the surrogate recordings)",
+                               _num(0, 100000, integer=True), "a whole number >= 0"),
+        "tau_s_min": Param(0.01, "shortest readout time constant searched, seconds",
+                           _num(0.001, 10), "a number of seconds from 0.001 to 10"),
+        "tau_s_max": Param(0.3, "longest readout time constant searched, seconds",
+                           _num(0.001, 10), "a number of seconds from 0.001 to 10"),
+        "dt": Param(1e-4, "simulation step, seconds (the transfer function is evaluated at "
+                          "this step)", _num(1e-6, 1e-3), "a number of seconds from 1e-6 "
+                                                              "to 1e-3"),
+    },
+    "compare": {
+        "n_surrogates": Param(20, "surrogate recordings simulated from the fitted network",
+                              _num(2, 10000, integer=True), "a whole number >= 2"),
+        "held_out_fraction": Param(0.5, "fraction of trials kept out of the network fit and "
+                                        "used for the comparison (0: compare on all trials)",
+                                   _num(0.0, 0.9), "a number from 0 to 0.9"),
+        "nulls": Param(["poisson", "dither", "shuffle", "continuous"],
+                       "null surrogates the network is compared against",
+                       lambda v: isinstance(v, list) and all(
+                           x in ("poisson", "dither", "shuffle", "continuous") for x in v),
+                       "a list drawn from poisson, dither, shuffle, continuous"),
+        "n_null": Param(20, "surrogates of each null", _num(2, 10000, integer=True),
+                        "a whole number >= 2"),
+        "refit": Param(True, "also refit the state model on every surrogate (slower)",
+                       lambda v: isinstance(v, bool), "true or false"),
+        "n_boot": Param(500, "bootstrap resamples for confidence intervals",
+                        _num(10, 100000, integer=True), "a whole number >= 10"),
+    },
     "run": {
         "seed": Param(0, "seed of every random stream of the run", _num(0, 2**63 - 1, integer=True),
                       "a whole number >= 0"),
@@ -130,6 +167,10 @@ def resolve_config(overrides: dict | None, *, source: str = "configuration") -> 
     if st["min_states"] > st["max_states"]:
         raise InputError(f"{source}: states.min_states = {st['min_states']} is larger than "
                          f"states.max_states = {st['max_states']}")
+    nw = cfg["network"]
+    if nw["tau_s_min"] >= nw["tau_s_max"]:
+        raise InputError(f"{source}: network.tau_s_min = {nw['tau_s_min']} is not below "
+                         f"network.tau_s_max = {nw['tau_s_max']}")
     if st["n_states"] == 1:
         raise InputError(f"{source}: states.n_states = 1; expected 0 (choose) or at least 2 "
                          "states")

@@ -139,6 +139,9 @@ class RunResult:
     comparison: object = None
     summary: dict = field(default_factory=dict)
     folder: RunFolder | None = None
+    surrogates: list = field(default_factory=list)
+    surrogate_example: tuple | None = None
+    held_out: np.ndarray | None = None
 
 
 @contextmanager
@@ -251,3 +254,98 @@ def suppress_library_warnings():
     """Hide third-party deprecation chatter during a run (our own warnings stay)."""
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", category=FutureWarning)
+
+
+def split_trials(binned, condition, fraction: float, rng) -> tuple:
+    """Training and held-out trial positions, stratified by ``condition``.
+
+    Within each level of the condition (or over all trials without one) a random
+    ``fraction`` of the trials (at least one when the level has two or more) is held
+    out. Returns ``(train, held_out)`` as sorted integer arrays; ``held_out`` is empty
+    when ``fraction`` is 0.
+    """
+    n = binned.n_trials
+    if fraction <= 0:
+        return np.arange(n), np.zeros(0, dtype=int)
+    groups = (np.asarray(binned.labels[condition]).astype(str) if condition
+              else np.zeros(n, dtype="<U1"))
+    held = []
+    for lv in np.unique(groups):
+        idx = np.flatnonzero(groups == lv)
+        k = int(round(fraction * idx.size))
+        if idx.size >= 2:
+            k = min(max(k, 1), idx.size - 1)
+        else:
+            k = 0
+        held.extend(rng.permutation(idx)[:k].tolist())
+    held = np.sort(np.asarray(held, dtype=int))
+    train = np.setdiff1d(np.arange(n), held)
+    if train.size < 2 or held.size < 2:
+        raise InputError(f"compare.held_out_fraction = {fraction:g} leaves {train.size} "
+                         f"training and {held.size} held-out trials of {n}; expected at least "
+                         "2 of each (lower the fraction, or set it to 0)")
+    return train, held
+
+
+def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
+              progress: bool = False) -> RunResult:
+    """Fit the network, simulate surrogates and nulls, compare model and data.
+
+    Streams: the fit, the surrogates, the nulls and the comparison each take their
+    own child of ``SeedSequence(seed)`` (after the two used by :func:`run_states`), so
+    adding a stage never changes the random numbers of another.
+    """
+    from attractorfit.compare import compare
+    from attractorfit.fit import fit_network
+    from attractorfit.surrogates import bin_like, network_surrogates, null_surrogates
+
+    cfg = result.config
+    nw, cp = cfg["network"], cfg["compare"]
+    ss = np.random.SeedSequence(seed).spawn(7)[2:]
+    split_seed, fit_seed, sur_seed, null_seed, cmp_seed = ss
+    b, sf, rec = result.binned, result.state_fit, result.recording
+    cond = _condition_column(b, cfg)
+    with _deterministic_threads():
+        train, held = split_trials(b, cond, cp["held_out_fraction"],
+                                   np.random.default_rng(split_seed))
+        _note(progress, "fitting the network")
+        nf = fit_network(b, sf, rule=nw["rule"], hypercube=nw["hypercube"],
+                         extra_neurons=nw["extra_neurons"],
+                         tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
+                         recording=rec, condition=cond if cond else False,
+                         train_trials=train, rng=np.random.default_rng(fit_seed),
+                         progress=False)
+        _note(progress, f"simulating {cp['n_surrogates']} surrogate recordings")
+        sur = network_surrogates(nf, cp["n_surrogates"], rng=np.random.default_rng(sur_seed),
+                                 n_jobs=n_jobs)
+        nulls = {}
+        if cp["nulls"]:
+            _note(progress, f"simulating null surrogates ({', '.join(cp['nulls'])})")
+            nulls = null_surrogates(rec, b, cp["nulls"], cp["n_null"], condition=cond,
+                                    rng=np.random.default_rng(null_seed), n_jobs=n_jobs)
+        _note(progress, "comparing model and data")
+        cmp_ = compare(b, sur, sf, recording=rec, nulls=nulls,
+                       trials=held if held.size else None, refit=cp["refit"],
+                       condition=cond, n_boot=cp["n_boot"],
+                       rng=np.random.default_rng(cmp_seed), n_jobs=n_jobs)
+    result.network_fit = nf
+    result.comparison = cmp_
+    result.surrogates = sur
+    first = bin_like(sur[0], b)
+    result.surrogate_example = (sur[0], first, sf.decode(first))
+    result.held_out = held
+    return result
+
+
+def _note(progress: bool, text: str) -> None:
+    if progress:
+        print(f"attractorfit: {text}", file=sys.stderr)
+
+
+def write_model_outputs(folder: RunFolder, result: RunResult) -> None:
+    """model.npz and surrogate.nwb of a fitted network."""
+    from attractorfit.io import write_nwb
+
+    arrays = result.network_fit.to_arrays()
+    folder.write_npz("model.npz", **arrays)
+    write_nwb(result.surrogates[0], folder.file("surrogate.nwb"))
