@@ -151,7 +151,7 @@ def test_continuous_recording_not_discrete(continuous):
         assert key in block
     assert "not proof" in block["text"]
     assert block["assumptions"]["latent_dims_rule"].startswith("cross-validated")
-    assert res.null_statistics.shape == (19,) and res.null_n_states.shape == (19,)
+    assert res.null_statistics.shape == (19,) and res.null_n_components.shape == (19,)
 
 
 def test_same_result_serial_and_parallel(continuous):

@@ -46,9 +46,11 @@ Every evaluation (on the data and on each surrogate) runs the same steps:
 2. factor analysis with K factors (K fixed from the data for all evaluations) and
    the posterior-mean latent trajectory of every bin, smoothed within trials;
 3. Gaussian mixtures with a shared (tied) covariance and S = 1 .. S_max
-   components; S is chosen by BIC (re-chosen in every surrogate);
-4. the statistic is the log-likelihood gain per bin of the chosen mixture over one
-   Gaussian.
+   components (EM from k-means++ starts);
+4. the statistic is the log-likelihood gain per bin, over one Gaussian, of the
+   mixture with S >= 2 components that BIC [3]_ prefers (S is re-chosen in every
+   surrogate; restricting the choice to S >= 2 keeps the statistic continuous, so
+   ties at zero cannot make p-values lumpy).
 
 One Gaussian with a full covariance describes exactly the second-order structure
 that the null matches by construction; the gain measures how much better clusters
@@ -653,7 +655,7 @@ def tied_gmm(x, n_components, *, means_init=None, rng=None, max_iter=100, tol=5e
 @dataclass
 class _StatisticValue:
     value: float
-    n_states: int
+    n_components: int
     loglik: np.ndarray
     bic: np.ndarray
 
@@ -690,7 +692,7 @@ def _statistic(binned_counts, n_valid, cond, n_cond, bin_size, *, n_dims, max_st
         bics[s - 1] = -2 * ll + n_par * np.log(n)
     best = int(np.argmin(bics[1:])) + 1            # the BIC-best mixture with S >= 2
     return _StatisticValue(value=float((lls[best] - lls[0]) / n),
-                           n_states=int(np.argmin(bics)) + 1,
+                           n_components=int(np.argmin(bics)) + 1,
                            loglik=lls, bic=bics)
 
 
@@ -699,9 +701,10 @@ def discreteness_statistic(binned, *, n_dims: int = 3, condition=None, max_state
                            smooth_s: float = 0.0, rng=None) -> float:
     """The test statistic on one BinnedCounts (see the module notes).
 
-    Returns the log-likelihood gain per bin of the BIC-chosen tied Gaussian mixture
-    over one Gaussian, on the factor-analysis trajectories of residual square-root
-    counts. Same options as :func:`discreteness_test`.
+    Returns the log-likelihood gain per bin, over one Gaussian, of the BIC-preferred
+    tied Gaussian mixture with at least two components, on the factor-analysis
+    trajectories of residual square-root counts. Same options as
+    :func:`discreteness_test`.
     """
     binned = _check_binned(binned)
     cond, levels = _conditions(binned, condition)
@@ -721,11 +724,13 @@ class DiscretenessResult:
     Attributes
     ----------
     statistic : float
-        Log-likelihood gain per bin of the chosen mixture over one Gaussian (data).
-    n_states : int
-        Number of mixture components chosen by BIC on the data.
+        Log-likelihood gain per bin of the BIC-preferred mixture with at least two
+        components over one Gaussian (data).
+    n_components : int
+        Number of mixture components (states of the latent trajectory) chosen by BIC
+        over 1..max_states on the data (not the Poisson HMM's number of states).
     null_statistics : ndarray (n_boot,)
-    null_n_states : ndarray of int (n_boot,)
+    null_n_components : ndarray of int (n_boot,)
         Components chosen in each surrogate.
     p_value : float
     verdict : str
@@ -742,9 +747,9 @@ class DiscretenessResult:
     """
 
     statistic: float
-    n_states: int
+    n_components: int
     null_statistics: np.ndarray
-    null_n_states: np.ndarray
+    null_n_components: np.ndarray
     p_value: float
     verdict: str
     alpha: float
@@ -768,7 +773,7 @@ class DiscretenessResult:
         return {"p_value": self.p_value, "verdict": self.verdict, "statistic": self.statistic,
                 "statistic_name": "mixture log-likelihood gain per bin over one Gaussian "
                                   "(latent trajectories of residual square-root counts)",
-                "n_states": self.n_states, "alpha": self.alpha, "n_boot": self.n_boot,
+                "mixture_components": self.n_components, "alpha": self.alpha, "n_boot": self.n_boot,
                 "null": self.description,
                 "null_statistic_mean": float(np.mean(self.null_statistics))
                 if self.null_statistics.size else float("nan"),
@@ -782,7 +787,7 @@ def _replicate(null, seed, opts):
     sim = null.simulate(rng)
     st = _statistic(sim.counts, sim.n_valid, null.trial_condition, len(null.levels),
                     null.bin_size, rng=rng, **opts)
-    return st.value, st.n_states
+    return st.value, st.n_components
 
 
 def discreteness_test(binned, *, n_boot: int = 199, alpha: float = 0.05, condition=None,
@@ -886,8 +891,8 @@ def discreteness_test(binned, *, n_boot: int = 199, alpha: float = 0.05, conditi
                         f"{max(2 * alpha, 0.1):g}; inconclusive otherwise, or with fewer "
                         f"than {MIN_TRIALS} trials or {MIN_BINS} bins",
     }
-    return DiscretenessResult(statistic=obs.value, n_states=obs.n_states,
-                              null_statistics=null_t, null_n_states=null_s, p_value=p,
+    return DiscretenessResult(statistic=obs.value, n_components=obs.n_components,
+                              null_statistics=null_t, null_n_components=null_s, p_value=p,
                               verdict=v, alpha=alpha, n_boot=n_boot, null=null,
                               description=null.describe(), assumptions=assumptions,
                               too_short=bool(too_short))
