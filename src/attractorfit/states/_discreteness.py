@@ -78,7 +78,6 @@ References
 
 from __future__ import annotations
 
-import math
 import warnings
 from dataclasses import dataclass, field
 
@@ -433,7 +432,8 @@ def fit_continuous_null(binned, *, n_dims: int = 3, condition=None,
     mean_mu = mflat.mean(axis=0)
     shared = np.diag(m0) * (np.exp(np.sum(W * W, axis=1)) - 1.0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        phi = np.where(mean_mu > 0, (np.diag(c0) - shared) / np.where(mean_mu > 0, mean_mu, 1), 1.0)
+        phi = np.where(mean_mu > 0,
+                       (np.diag(c0) - shared) / np.where(mean_mu > 0, mean_mu, 1), 1.0)
     phi = np.clip(phi, 0.05, 50.0)
     tau = np.zeros(k)
     if k:
@@ -773,7 +773,8 @@ class DiscretenessResult:
         return {"p_value": self.p_value, "verdict": self.verdict, "statistic": self.statistic,
                 "statistic_name": "mixture log-likelihood gain per bin over one Gaussian "
                                   "(latent trajectories of residual square-root counts)",
-                "mixture_components": self.n_components, "alpha": self.alpha, "n_boot": self.n_boot,
+                "mixture_components": self.n_components, "alpha": self.alpha,
+                "n_boot": self.n_boot,
                 "null": self.description,
                 "null_statistic_mean": float(np.mean(self.null_statistics))
                 if self.null_statistics.size else float("nan"),
