@@ -268,13 +268,28 @@ def test_pattern_completion_rate_and_spiking():
     assert spk.fraction_recalled[0] == 1.0
 
 
-def test_capacity_sweep_smoke():
-    res = capacity_sweep(60, [0.05, 0.1], rule="pseudoinverse", corruption=0.0, rng=0)
-    assert res.n_patterns.tolist() == [3, 6]
+def test_capacity_sweep_rate_picture():
+    # Binary patterns (coding level 0.5, one latent axis each): the pseudo-inverse rule
+    # stores them exactly and retrieves them at low load; the Hebbian rule is inexact and
+    # does not hold them (its fixed points are not at the vertices).
+    res = capacity_sweep(60, [0.05, 0.1], rule="pseudoinverse", rng=0)
+    assert res.n_patterns.tolist() == [3, 6] and res.n_dims.tolist() == [3, 6]
     assert np.all(res.residual < 1e-8)
     assert np.all(res.mean_overlap > 0.99) and np.all(res.fraction_held == 1.0)
     assert np.isnan(res.capacity)  # never below the threshold at these loads
-    assert 0.3 < res.shared_active < 0.7  # patterns share about half their active neurons
+    assert 0.35 < res.shared_active < 0.65  # patterns share about half their active units
+    heb = capacity_sweep(60, [0.1], rule="hebbian", rng=0)
+    assert heb.residual[0] > 0.1 and heb.fraction_held[0] < 0.5
+    vert = capacity_sweep(40, [0.1], rule="pseudoinverse", patterns="vertices", n_dims=4,
+                          corruption=0.0, rng=0)
+    assert vert.n_dims.tolist() == [4] and vert.residual[0] < 1e-8
+
+
+def test_capacity_sweep_spiking_smoke():
+    res = capacity_sweep(60, [0.05], rule="pseudoinverse", method="spiking", n_starts=1,
+                         duration=0.2, rng=0)
+    assert res.method == "spiking" and res.fraction_held[0] == 1.0
+    assert res.mean_overlap[0] > 0.8
 
 
 # ----------------------------------------------------------- binary limit
@@ -358,7 +373,11 @@ def test_attractor_input_errors():
     with pytest.raises(InputError, match="loads: expected P/N values > 0"):
         capacity_sweep(20, [0.0])
     with pytest.raises(InputError, match="do not fit on the 4 vertices"):
-        capacity_sweep(20, [0.5], n_dims=2)
+        capacity_sweep(20, [0.5], patterns="vertices", n_dims=2)
+    with pytest.raises(InputError, match="patterns: expected 'binary' or 'vertices'"):
+        capacity_sweep(20, [0.1], patterns="other")
+    with pytest.raises(InputError, match="method: expected 'rate' or 'spiking'"):
+        capacity_sweep(20, [0.1], method="other")
     with pytest.raises(InputError, match="rule: expected 'hebbian' or 'pseudoinverse'"):
         binary_capacity(20, [0.1], rule="optimized")
     with pytest.raises(InputError, match="do not fit"):

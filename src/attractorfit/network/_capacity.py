@@ -212,63 +212,127 @@ def _crossing(loads, values, threshold):
 
 @dataclass
 class CapacityResult:
-    """Retrieval versus load P/N for one decoder rule (rate picture).
+    """Retrieval versus load P/N for one decoder rule.
 
     Attributes
     ----------
     rule : str
+    patterns : str
+        ``'binary'`` or ``'vertices'`` (see :func:`capacity_sweep`).
+    method : str
+        ``'rate'`` (rate picture) or ``'spiking'``.
     loads : ndarray (L,)
         P / N.
     n_patterns : ndarray (L,) int
+    n_dims : ndarray (L,) int
+        Rank K of each network.
     mean_overlap : ndarray (L,)
-        Mean cosine similarity between the end point of a start from a corrupted pattern
-        and the pattern's vertex (latent).
+        Mean overlap of the end state with the pattern started from: cosine similarity of
+        the rates with the pattern's rates, both centred on the mean pattern (1: perfect
+        retrieval, about 0: unrelated).
     fraction_recalled : ndarray (L,)
-        Fraction of those starts that end at the right vertex.
+        Fraction of starts whose end state is closer (by that overlap) to the target
+        pattern than to any other and has overlap >= ``threshold``.
     fraction_held : ndarray (L,)
-        Fraction of patterns whose vertex holds (start exactly there, stay within
-        ``vertex_tol``).
+        Rate picture: fraction of patterns whose vertex holds (start within 0.05 a of it,
+        s.d. per coordinate; every coordinate still within ``vertex_tol`` of it after 40
+        ``tau_s``). Spiking: same as ``fraction_recalled`` from uncorrupted starts.
     residual : ndarray (L,)
         Relative constraint residual of the decoder.
     median_margin : ndarray (L,)
-        Median stability margin of the Jacobians at the vertices.
+        Median stability margin of the Jacobians at the vertices (rate picture).
+    margin_reached : ndarray (L,) bool
+        For the optimized rule: the requested margin was reached (else always True).
     noise_ratio : ndarray (L,)
-        Median readout shot-noise s.d. / vertex spacing at the vertices.
+        Median predicted readout shot-noise s.d. / vertex spacing at the vertices.
     shared_active : float
-        Mean fraction of active neurons (rate above the median rate) shared by two
-        patterns, at the largest load.
+        Mean fraction of a pattern's active neurons (rate above the median rate) that are
+        also active in another pattern, at the largest load.
     capacity : float
-        Load where ``mean_overlap`` first drops below ``threshold`` (nan: not within the
-        loads tried).
+        Load where ``mean_overlap`` first drops below ``threshold`` (linear
+        interpolation; nan: not within the loads tried).
     threshold : float
     """
 
     rule: str
+    patterns: str
+    method: str
     loads: np.ndarray
     n_patterns: np.ndarray
+    n_dims: np.ndarray
     mean_overlap: np.ndarray
     fraction_recalled: np.ndarray
     fraction_held: np.ndarray
     residual: np.ndarray
     median_margin: np.ndarray
+    margin_reached: np.ndarray
     noise_ratio: np.ndarray
     shared_active: float
     capacity: float
     threshold: float
 
 
-def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", n_dims=None, gain=0.6,
-                   bias=1.0, noise=0.5, tau_s=0.05, margin=0.2, corruption=0.1,
-                   n_starts=2, threshold=0.9, dt=1e-4, vertex_tol=0.25, rng=None):
-    """Mean retrieval overlap versus load P/N, and the capacity, in the rate picture.
+def _binary_network(n, p, rng, *, coding, pattern_rates, bias, noise, dt):
+    """Rank-P network whose P random binary rate patterns sit at random cube vertices."""
+    from attractorfit.network._transfer import transfer_inverse
 
-    For each load, ``P = round(load N)`` distinct random vertices of a K-dimensional cube
-    are stored in a network of N neurons with a random Gaussian encoder (entries
-    N(0, gain^2 / K), so each neuron's input varies across vertices with s.d. ``gain``
-    around ``bias``; two random patterns then share about half their active neurons).
-    The decoder comes from ``rule``. Each pattern is started from the readout of
-    ``n_starts`` corrupted copies (fraction ``corruption``) and from its exact vertex,
-    and the rate picture is integrated.
+    h_lo, h_hi = transfer_inverse(np.asarray(pattern_rates, float), noise, dt=dt)
+    active = rng.random((n, p)) < coding
+    inputs = np.where(active, h_hi, h_lo)
+    while True:  # random +-1 codes, one latent axis per pattern, invertible
+        codes = rng.choice([-1.0, 1.0], size=(p, p))
+        if p == 1 or np.linalg.matrix_rank(codes) == p:
+            break
+    enc = np.linalg.solve(codes, (inputs - bias).T).T      # E a x^mu + bias = inputs[:, mu]
+    return enc, codes.astype(int)
+
+
+def _vertex_network(n, p, k, rng, *, gain):
+    enc = rng.normal(0.0, gain / np.sqrt(k), size=(n, k))
+    idx = rng.choice(2 ** k, size=p, replace=False)
+    codes = ((idx[:, None] >> np.arange(k)[::-1]) & 1) * 2 - 1
+    return enc, codes
+
+
+def _decode(rule, pats, enc, tau_s, margin):
+    x = pats.codes.T.astype(float)
+    if rule == "hebbian":
+        return decoder_hebbian(pats.rates, x, tau_s=tau_s, encoder=enc, slopes=pats.slopes)
+    if rule == "pseudoinverse":
+        return decoder_pseudoinverse(pats.rates, x, tau_s=tau_s, encoder=enc,
+                                     slopes=pats.slopes)
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return decoder_optimized(pats.rates, x, tau_s=tau_s, encoder=enc, slopes=pats.slopes,
+                                 margin=margin)
+
+
+def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", patterns="binary",
+                   method="rate", n_dims=None, coding=0.5, pattern_rates=(0.5, 40.0),
+                   gain=0.6, bias=1.0, noise=0.2, tau_s=0.05, margin=0.2, corruption=0.1,
+                   n_starts=2, threshold=0.9, dt=1e-4, duration=0.5, vertex_tol=0.25,
+                   rng=None):
+    """Retrieval overlap versus load P/N, and the capacity.
+
+    For each load, ``P = round(load N)`` patterns are stored in a network of N neurons,
+    with the decoder from ``rule``; each pattern is then started from the readout
+    ``tau_s D r~`` of ``n_starts`` corrupted copies ``r~`` (a fraction ``corruption`` of
+    the neurons take the rate of a random neuron of the same pattern) and the network
+    runs, in the rate picture (40 ``tau_s``) or spiking (``duration`` s, end state = the
+    spike counts of the last 40%).
+
+    Two ways of making patterns:
+
+    * ``patterns='binary'`` -- P random binary rate patterns (each neuron active with
+      probability ``coding``; two rate levels ``pattern_rates`` in Hz; with coding 0.5
+      two patterns share about half their active neurons), each at a random vertex of
+      its own K = P dimensional cube: the encoder is solved so that
+      ``phi(E a x^mu + bias) = r^mu`` exactly (rank-P network, as in associative memory
+      models with one latent direction per pattern);
+    * ``patterns='vertices'`` -- P random distinct vertices of a fixed K-dimensional cube
+      (``n_dims``), random Gaussian encoder (entries N(0, gain^2 / K)); the rates follow.
 
     Parameters
     ----------
@@ -276,10 +340,19 @@ def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", n_dims=None, gain=
     loads : sequence of float
         P / N values (> 0).
     rule : {'hebbian', 'pseudoinverse', 'optimized'}
+    patterns : {'binary', 'vertices'}
+    method : {'rate', 'spiking'}
     n_dims : int, optional
-        K (default: enough for four times the largest P, at least 4, at most 16).
-    gain, bias, noise : float
-        Encoder scale, constant input and membrane noise of every neuron.
+        K for ``patterns='vertices'`` (default: enough for four times the largest P,
+        between 4 and 16).
+    coding : float
+        Fraction of active neurons per binary pattern.
+    pattern_rates : (float, float)
+        Inactive and active rates (Hz) of binary patterns.
+    gain : float
+        Encoder scale for ``patterns='vertices'``.
+    bias, noise : float
+        Constant input and membrane noise of every neuron.
     tau_s : float
         Readout time constant (s).
     margin : float
@@ -291,49 +364,56 @@ def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", n_dims=None, gain=
     threshold : float
         Overlap below which retrieval counts as lost (defines ``capacity``).
     dt : float
-        Simulator step of the transfer function.
+        Simulator step (and step of the transfer function).
+    duration : float
+        Simulated time per start for ``method='spiking'`` (s).
     vertex_tol : float
     rng : None, int or numpy.random.Generator
 
     Returns
     -------
     CapacityResult
+
+    References
+    ----------
+    .. [1] Personnaz L, Guyon I, Dreyfus G (1985) J Physique Lettres 46:L359-L365.
+    .. [2] Kanter I, Sompolinsky H (1987) Physical Review A 35:380-392.
     """
     n = check_int("n_neurons", n_neurons, low=2)
     loads = np.atleast_1d(check_array("loads", loads))
     if np.any(loads <= 0):
-        raise InputError(f"loads: expected P/N values > 0, got {loads.min()!r}")
+        raise InputError(f"loads: expected P/N values > 0, got {float(loads.min())!r}")
     if rule not in _RULES:
         raise InputError(f"rule: expected one of {_RULES}, got {rule!r}")
+    if patterns not in ("binary", "vertices"):
+        raise InputError(f"patterns: expected 'binary' or 'vertices', got {patterns!r}")
+    if method not in ("rate", "spiking"):
+        raise InputError(f"method: expected 'rate' or 'spiking', got {method!r}")
     threshold = check_fraction("threshold", threshold)
+    coding = check_fraction("coding", coding)
+    corruption = check_fraction("corruption", corruption)
+    n_starts = check_int("n_starts", n_starts, low=1)
     rng = check_rng(rng)
     n_pat = np.maximum(1, np.round(loads * n).astype(int))
-    if n_dims is None:
-        n_dims = int(min(16, max(4, np.ceil(np.log2(4 * n_pat.max())))))
-    k = check_int("n_dims", n_dims, low=1, high=20)
-    if n_pat.max() > 2 ** k:
-        raise InputError(f"loads: {int(n_pat.max())} patterns do not fit on the {2 ** k} "
-                         f"vertices of a {k}-dimensional cube; raise n_dims")
-    out = {key: [] for key in ("overlap", "recalled", "held", "resid", "margin", "noise")}
+    if patterns == "vertices":
+        if n_dims is None:
+            n_dims = int(min(16, max(4, np.ceil(np.log2(4 * n_pat.max())))))
+        k = check_int("n_dims", n_dims, low=1, high=20)
+        if n_pat.max() > 2 ** k:
+            raise InputError(f"loads: {int(n_pat.max())} patterns do not fit on the "
+                             f"{2 ** k} vertices of a {k}-dimensional cube; raise n_dims")
+    keys = ("overlap", "recalled", "held", "resid", "margin", "reached", "noise", "k")
+    out = {key: [] for key in keys}
     shared = float("nan")
     for p in n_pat:
-        enc = rng.normal(0.0, gain / np.sqrt(k), size=(n, k))
-        idx = rng.choice(2 ** k, size=p, replace=False)
-        codes = ((idx[:, None] >> np.arange(k)[::-1]) & 1) * 2 - 1
-        pats = vertex_patterns(enc, codes, bias=bias, noise=noise, dt=dt)
-        x = codes.T.astype(float)
-        if rule == "hebbian":
-            res = decoder_hebbian(pats.rates, x, tau_s=tau_s, encoder=enc, slopes=pats.slopes)
-        elif rule == "pseudoinverse":
-            res = decoder_pseudoinverse(pats.rates, x, tau_s=tau_s, encoder=enc,
-                                        slopes=pats.slopes)
+        if patterns == "binary":
+            enc, codes = _binary_network(n, p, rng, coding=coding,
+                                         pattern_rates=pattern_rates, bias=bias, noise=noise,
+                                         dt=dt)
         else:
-            import warnings
-
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                res = decoder_optimized(pats.rates, x, tau_s=tau_s, encoder=enc,
-                                        slopes=pats.slopes, margin=margin)
+            enc, codes = _vertex_network(n, p, k, rng, gain=gain)
+        pats = vertex_patterns(enc, codes, bias=bias, noise=noise, dt=dt)
+        res = _decode(rule, pats, enc, tau_s, margin)
         net = LowRankNetwork(enc, res.decoder, bias=bias, noise=noise, tau_s=tau_s)
         starts, owner = [], []
         for m in range(p):
@@ -341,34 +421,49 @@ def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", n_dims=None, gain=
             starts.append(tau_s * bad @ res.decoder.T)
             owner.append(np.full(n_starts, m))
         starts, owner = np.vstack(starts), np.concatenate(owner)
-        ends = rate_flow(net, np.vstack([starts, codes.astype(float)]), dt=dt)
-        ends, held_ends = ends[:-p], ends[-p:]
-        target = codes[owner].astype(float)
-        cos = np.sum(ends * target, axis=1) / np.maximum(
-            np.linalg.norm(ends, axis=1) * np.sqrt(k), 1e-300)
-        ok = np.all(np.sign(ends) == codes[owner], axis=1) & (
-            np.linalg.norm(ends - target, axis=1) < vertex_tol)
-        held = np.linalg.norm(held_ends - codes, axis=1) < vertex_tol
-        out["overlap"].append(float(cos.mean()))
+        if method == "rate":
+            nudged = codes + rng.normal(0.0, 0.05, size=codes.shape)
+            ends = rate_flow(net, np.vstack([starts, nudged]), dt=dt)
+            ends, held_ends = ends[:-p], ends[-p:]
+            end_rates = np.asarray(net.rates_at(ends, dt=dt), dtype=float)
+            held = np.max(np.abs(held_ends - codes), axis=1) < vertex_tol
+        else:
+            exact = codes.astype(float)
+            sim = net.simulate(duration, dt=dt, n_trials=starts.shape[0] + p,
+                               y0=np.vstack([starts, exact]), seed=rng)
+            t0 = 0.6 * duration
+            end_all = np.array([[np.sum(t >= t0) for t in trial] for trial in sim.trials],
+                               dtype=float) / (duration - t0)
+            end_rates = end_all[:-p]
+            ov_held = overlaps(end_all[-p:], pats.rates.T, center=True)
+            held = (np.argmax(ov_held, axis=1) == np.arange(p)) & (
+                ov_held[np.arange(p), np.arange(p)] >= threshold)
+        ov = overlaps(end_rates, pats.rates.T, center=True)
+        own = ov[np.arange(owner.size), owner]
+        ok = (np.argmax(ov, axis=1) == owner) & (own >= threshold)
+        out["overlap"].append(float(own.mean()))
         out["recalled"].append(float(ok.mean()))
         out["held"].append(float(held.mean()))
         out["resid"].append(res.residual)
         out["margin"].append(float(np.median(res.margins)))
+        out["reached"].append(bool(res.success))
         out["noise"].append(float(np.median(readout_noise_ratio(net, codes, dt=dt))))
-        active = pats.rates > np.median(pats.rates)
+        out["k"].append(net.rank)
         if p > 1:
-            a = active.astype(float)
+            a = (pats.rates > np.median(pats.rates)).astype(float)
             both = a.T @ a
             count = a.sum(axis=0)
             iu = np.triu_indices(p, 1)
             shared = float(np.mean(both[iu] / np.maximum(np.minimum.outer(count, count)[iu],
                                                          1)))
     overlap = np.array(out["overlap"])
-    return CapacityResult(rule=rule, loads=loads, n_patterns=n_pat, mean_overlap=overlap,
+    return CapacityResult(rule=rule, patterns=patterns, method=method, loads=loads,
+                          n_patterns=n_pat, n_dims=np.array(out["k"]), mean_overlap=overlap,
                           fraction_recalled=np.array(out["recalled"]),
                           fraction_held=np.array(out["held"]),
                           residual=np.array(out["resid"]),
                           median_margin=np.array(out["margin"]),
+                          margin_reached=np.array(out["reached"]),
                           noise_ratio=np.array(out["noise"]), shared_active=shared,
                           capacity=_crossing(loads, overlap, threshold),
                           threshold=threshold)
