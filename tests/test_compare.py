@@ -207,6 +207,12 @@ def test_dwell_logrank_per_state_and_figure_arrays(world):
     assert c.fano_model.shape == (20, N) and c.correlation_model.shape == (20, N * (N - 1) // 2)
     tab = c.conditions["item"]
     assert tab["levels"] == ["a", "b", "c"] and tab["fraction_data"].shape == (3, S)
+    given = {str(k): v for k, v in fit.label_to_state["item"].items()}
+    assert tab["matching_state"].tolist() == [given[lv] for lv in tab["levels"]]
+    j = np.arange(3)
+    np.testing.assert_allclose(tab["matching_data"],
+                               tab["fraction_data"][j, tab["matching_state"]])
+    assert c.summary_block()["conditions"]["item"]["levels"] == ["a", "b", "c"]
 
 
 def test_fano_of_poisson_counts_is_one(world):
@@ -397,3 +403,25 @@ def test_compare_input_errors(world, spikes):
         compare(data, model[:2], fit, count_window_s=0)
     with pytest.raises(InputError, match="observed: expected one flag per duration"):
         logrank_test([1, 2], [1], [1], [1])
+
+
+def test_reference_quantile_is_the_monte_carlo_critical_value():
+    # Monte Carlo test (Davison & Hinkley 1997, section 4.2): with B exchangeable values
+    # the k-th smallest, k = ceil(0.95 (B + 1)), is exceeded with probability
+    # (B + 1 - k) / (B + 1) <= 0.05. B = 19 or 20 -> the largest; B = 99 -> the 95th.
+    from attractorfit.compare import reference_quantile
+
+    r = np.arange(1.0, 21.0)
+    assert reference_quantile(r) == 20.0
+    assert reference_quantile(r[:19]) == 19.0
+    assert reference_quantile(np.arange(1.0, 100.0)) == 95.0
+    assert reference_quantile(np.arange(1.0, 100.0), upper=False) == 5.0
+    assert reference_quantile(r[:5]) == 5.0                       # clipped to B
+    assert np.isnan(reference_quantile([np.nan]))
+    # exchangeable draws: the data exceed the critical value in <= 5% of repetitions
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((4000, 21))
+    crit = np.array([reference_quantile(row[1:]) for row in x])
+    rate = np.mean(x[:, 0] > crit)
+    # exact rate 1/21 = 0.0476; binomial s.e. over 4000 repetitions 0.0034
+    assert abs(rate - 1 / 21) < 0.012

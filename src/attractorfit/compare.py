@@ -63,8 +63,11 @@ against its *reference distribution*: the same statistic with each model surroga
 in the data's place and the other B - 1 surrogates as the ensemble (leave one out).
 A distance is **consistent with the model** when it is <= the 95th percentile of its
 reference (``<name>_ref95``); a similarity (R^2) when it is >= the 5th percentile
-(``<name>_ref05``). The Monte Carlo p-value is (1 + #{reference as extreme}) / (B + 1)
-[2]_. All of this runs on the held-out trials (the data's trials not used to fit the
+(``<name>_ref05``). The percentile is the Monte Carlo critical value (the
+ceil(0.95 (B + 1))-th smallest of the B reference values, see
+:func:`reference_quantile`), so that data exchangeable with the surrogates are flagged
+at most 5% of the time; the rule then agrees with the Monte Carlo p-value
+(1 + #{reference as extreme}) / (B + 1) > 0.05 [2]_ for B >= 19. All of this runs on the held-out trials (the data's trials not used to fit the
 network) and the surrogates' trials at the same positions, so data and each
 surrogate have the same size. The confidence interval of each statistic resamples
 the B surrogates with replacement (``n_boot`` times): it shows the Monte Carlo
@@ -131,7 +134,8 @@ from attractorfit.stats import isi_cv
 from attractorfit.surrogates import bin_like, spawn_streams, trial_groups
 
 __all__ = ["Comparison", "MetricResult", "NullResult", "LogRankResult", "compare",
-           "logrank_test", "ks_statistic", "total_variation"]
+           "logrank_test", "ks_statistic", "total_variation", "centred_rate_r2",
+           "reference_quantile"]
 
 #: Relative tolerance under which two statistics count as equal (floating-point rounding).
 _TIE = 1e-10
@@ -603,7 +607,8 @@ class MetricResult:
         The statistic with each surrogate in the data's place (leave one out).
     ref : float
         95th percentile of ``reference`` for a distance (``<name>_ref95``), 5th
-        percentile for a similarity (``<name>_ref05``).
+        percentile for a similarity (``<name>_ref05``), as Monte Carlo critical values
+        (:func:`reference_quantile`).
     ci : ndarray (2,)
         2.5 and 97.5 percentiles of the statistic over bootstrap resamples of the
         surrogates.
@@ -630,13 +635,28 @@ class MetricResult:
         return "ref95" if self.kind == _DISTANCE else "ref05"
 
 
+def reference_quantile(reference, *, upper: bool = True, level: float = 0.95) -> float:
+    """The Monte Carlo critical value of a reference sample (the ``_ref95`` rule).
+
+    For B exchangeable reference values, the k-th smallest with
+    k = ceil(level (B + 1)) is exceeded by one more exchangeable value with probability
+    at most 1 - level [2]_; with B = 20 that is the largest value, with B = 99 the
+    95th smallest (a plain interpolated percentile of 20 values is exceeded about 10% of
+    the time). ``upper=False`` gives the k-th largest (for similarities). With fewer
+    than 1 / (1 - level) - 1 values k is clipped to B: the rule then only flags values
+    beyond every reference value (a looser test; :func:`compare` warns).
+    """
+    r = np.sort(np.asarray(reference, dtype=float)[np.isfinite(reference)])
+    if r.size == 0:
+        return float("nan")
+    k = min(int(math.ceil(level * (r.size + 1) - 1e-9)), r.size)
+    return float(r[k - 1]) if upper else float(r[r.size - k])
+
+
 def _judge(name, value, reference, boots):
     ref_ok = reference[np.isfinite(reference)]
     dist = _kind(name) == _DISTANCE
-    if ref_ok.size:
-        ref = float(np.quantile(ref_ok, 0.95 if dist else 0.05))
-    else:
-        ref = float("nan")
+    ref = reference_quantile(ref_ok, upper=dist)
     b_ok = boots[np.isfinite(boots)]
     ci = np.quantile(b_ok, [0.025, 0.975]) if b_ok.size else np.full(2, np.nan)
     if np.isfinite(value) and ref_ok.size:
@@ -655,8 +675,8 @@ def _judge(name, value, reference, boots):
         verdict = "consistent with the model" if consistent else \
             "NOT consistent with the model"
         text = (f"{what}: {name} = {value:.3g} {rule if consistent else 'vs'} {ref:.3g}, the "
-                f"{pct} percentile between model surrogates of the data's size; {verdict} "
-                f"(p = {p:.3g}).")
+                f"{pct} percentile between model surrogates of the data's size "
+                f"(B = {ref_ok.size}); {verdict} (p = {p:.3g}).")
     return MetricResult(name=name, kind=_kind(name), value=float(value),
                         reference=np.asarray(reference, dtype=float), ref=ref,
                         ci=np.asarray(ci, dtype=float), p_value=p, consistent=consistent,
@@ -819,8 +839,11 @@ class Comparison:
         scipy ``ks_2samp`` p-values of the data against the pooled surrogates.
     conditions : dict of str to dict
         Per label: ``levels``, ``fraction_data`` (L, S), ``fraction_model`` (L, S),
-        ``unassigned_data``/``unassigned_model`` (L,), ``matching_state`` (L,),
-        ``matching_data``/``matching_model`` (L,): fractions of delay time.
+        ``unassigned_data``/``unassigned_model`` (L,), ``matching_state`` (L,): the
+        cue-matching state of each level (the state model's ``label_to_state`` when it
+        names one, else the level's most occupied state in the data),
+        ``matching_data``/``matching_model`` (L,): fractions of all delay time (assigned
+        or not) in it.
     nulls : dict of str to NullResult
     alpha : float
     unit_ids : list of str
@@ -927,11 +950,18 @@ class Comparison:
             "consistent_all": all(m.consistent for m in self.metrics.values()
                                   if m.consistent is not None),
             "refit": block(self.refit_metrics),
+            "conditions": {label: {"levels": list(t["levels"]),
+                                   "matching_state": [int(v) for v in t["matching_state"]],
+                                   "matching_data": [float(v) for v in t["matching_data"]],
+                                   "matching_model": [float(v) for v in t["matching_model"]]}
+                           for label, t in self.conditions.items()},
             "nulls": {k: v.to_dict() for k, v in self.nulls.items()},
             "text": " ".join(self.text), "caution": CAUTION,
             "reference_rule": ("distance consistent when <= 95th percentile (_ref95), R^2 "
                                "when >= 5th percentile (_ref05), of the statistic with "
-                               "each model surrogate in the data's place (leave one out)"),
+                               "each model surrogate in the data's place (leave one out); "
+                               "percentiles as Monte Carlo critical values, the "
+                               "ceil(0.95 (B + 1))-th of B values"),
         })
         return out
 
@@ -1365,11 +1395,12 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
     nres = {nm: _compare_null(nm, sums, data_sum, ens, loo, full, metrics, names, alpha)
             for nm, sums in null_sums.items()}
     return _assemble(data, pos, held_out, S, data_sum, ens, full, metrics, refit_metrics,
-                     data_refit, model_refit, nres, cond_specs, alpha, n_boot, boot_rng)
+                     data_refit, model_refit, nres, cond_specs, alpha, n_boot, boot_rng,
+                     getattr(state_fit, "label_to_state", None))
 
 
 def _assemble(data, pos, held_out, S, ds, ens, full, metrics, refit_metrics, data_refit,
-              model_refit, nres, cond_specs, alpha, n_boot, rng):
+              model_refit, nres, cond_specs, alpha, n_boot, rng, label_to_state):
     from attractorfit.states._segments import kaplan_meier
 
     # data occupancy: trial bootstrap
@@ -1403,6 +1434,10 @@ def _assemble(data, pos, held_out, S, ds, ens, full, metrics, refit_metrics, dat
         fd, fm = _row_normalise(td), _row_normalise(tm)
         assigned = td[:, :S].sum(axis=1)
         match = np.where(assigned > 0, np.argmax(td[:, :S], axis=1), -1)
+        given = {str(k): v for k, v in (label_to_state or {}).get(label, {}).items()}
+        for j, lev in enumerate(levels):
+            if lev in given and -1 <= int(given[lev]) < S:
+                match[j] = int(given[lev])
         idx = np.arange(len(levels))
         pick = np.clip(match, 0, None)
         conditions[label] = {
