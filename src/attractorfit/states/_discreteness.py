@@ -554,7 +554,7 @@ def _kmeanspp(x, s, rng):
     return x[idx].copy()
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _gmm_step(x, linv, means, logw, const):  # pragma: no cover - compiled
     """One E-step of a tied-covariance mixture, accumulating M-step sums.
 
@@ -823,8 +823,9 @@ def discreteness_test(binned, *, n_boot: int = 199, alpha: float = 0.05, conditi
         Smoothing of the latent trajectories within trials (s.d., seconds).
     rng : int or Generator, optional
     n_jobs : int
-        Parallel surrogates (joblib); surrogates use streams spawned from one
-        ``SeedSequence``, so the result does not depend on ``n_jobs``.
+        Parallel surrogates (joblib threads; BLAS limited to one thread each);
+        surrogates use streams spawned from one ``SeedSequence``, so the result does
+        not depend on ``n_jobs``.
     progress : bool
         Show a progress bar (tqdm).
 
@@ -863,17 +864,23 @@ def discreteness_test(binned, *, n_boot: int = 199, alpha: float = 0.05, conditi
     data_seed, *seeds = root.spawn(n_boot + 1)
     obs = _statistic(binned.counts, binned.n_valid, cond, len(levels), binned.bin_size,
                      rng=np.random.default_rng(data_seed), **opts)
-    if n_jobs == 1:
-        it = seeds
-        if progress:
-            from tqdm import tqdm
-            it = tqdm(seeds, desc="discreteness surrogates")
-        res = [_replicate(null, s, opts) for s in it]
-    else:
-        from joblib import Parallel, delayed
+    from threadpoolctl import threadpool_limits
 
-        res = Parallel(n_jobs=n_jobs, verbose=10 if progress else 0)(
-            delayed(_replicate)(null, s, opts) for s in seeds)
+    # one BLAS thread per replicate: no oversubscription, same numbers serial or parallel
+    with threadpool_limits(limits=1, user_api="blas"):
+        if n_jobs == 1:
+            it = seeds
+            if progress:
+                from tqdm import tqdm
+                it = tqdm(seeds, desc="discreteness surrogates")
+            res = [_replicate(null, s, opts) for s in it]
+        else:
+            # threads: the compiled mixture EM releases the GIL and NumPy's kernels
+            # do too; no process start-up and no copying of the null model
+            from joblib import Parallel, delayed
+
+            res = Parallel(n_jobs=n_jobs, prefer="threads", verbose=10 if progress else 0)(
+                delayed(_replicate)(null, s, opts) for s in seeds)
     null_t = np.array([r[0] for r in res])
     null_s = np.array([r[1] for r in res], dtype=np.int64)
     p = p_value(obs.value, null_t)
