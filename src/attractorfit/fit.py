@@ -72,7 +72,7 @@ from attractorfit.network import (
 from attractorfit.network._transfer import DISCRETE_THRESHOLD_SHIFT
 
 __all__ = ["NetworkFit", "fit_network", "fit_encoder", "fit_decoder", "extend_codes",
-           "centred_rate_r2", "isi_cv_lif", "noise_from_isi_cv", "RULES"]
+           "centred_rate_r2", "isi_cv_lif", "noise_from_isi_cv", "rescaled_isi_cv", "RULES"]
 
 #: Decoder rules accepted by :func:`fit_network`.
 RULES = ("pseudoinverse", "optimized", "hebbian")
@@ -231,38 +231,36 @@ def _cv_at_rates(rates_hz, noise, dt, n_grid=1501):
     return np.interp(np.log(r), np.log(rate[ok]), cv[ok])
 
 
-def _mixture_cv(rates_hz, weights, noise, dt):
-    """ISI CV of units whose firing mixes states (S x N rates, S weights), per unit.
+def _pooled_cv(rates_hz, weights, noise, dt):
+    """Time-rescaled ISI CV of model units switching between states, per unit.
 
-    Spikes in state ``s`` make a fraction ``w_s r_s / sum_t w_t r_t`` of all intervals,
-    each with mean ``1 / r_s`` and CV ``cv_s`` (the LIF CV at that rate), so
-    ``CV^2 = E[I^2] / E[I]^2 - 1`` with ``E[I] = sum_s p_s / r_s`` and
-    ``E[I^2] = sum_s p_s (1 + cv_s^2) / r_s^2`` (intervals spanning a switch ignored).
+    In operational time (time rescaled by the unit's current rate) every state's
+    intervals have mean 1 and variance ``cv_s^2`` (the LIF CV at the state's rate), so
+    pooled over states in proportion to their spikes (``p_s ~ w_s r_s``) the CV is
+    ``sqrt(sum_s p_s cv_s^2)`` (intervals spanning a switch ignored).
     """
     rate = _clip_rates(np.asarray(rates_hz, float))
     cv = _cv_at_rates(rate, noise, dt)
     p = weights[:, None] * rate
     p = p / p.sum(axis=0, keepdims=True)
-    m1 = np.sum(p / rate, axis=0)
-    m2 = np.sum(p * (1.0 + cv ** 2) / rate ** 2, axis=0)
-    return np.sqrt(np.maximum(m2 / m1 ** 2 - 1.0, 0.0))
+    return np.sqrt(np.sum(p * cv ** 2, axis=0))
 
 
 def noise_from_isi_cv(target_cv, rates_hz, weights=None, *, dt=1e-4, noise_range=NOISE_RANGE,
                       tol=1e-3):
     """Membrane noise at which the model's median ISI CV over units equals ``target_cv``.
 
-    Each unit's model CV is that of an LIF neuron switching between its state rates
-    (``rates_hz``, S x N) in proportion to ``weights`` (state occupancy), with the
-    neuron's bias re-chosen at every noise value so that its rates stay the targets (see
-    ``_mixture_cv``): at fixed rate, more noise means more irregular firing, so the
-    median CV rises with the noise and a bisection on ``log noise`` finds it. Values
-    outside what the range allows are clipped to its ends.
+    Each unit's model CV is that of an LIF neuron whose bias is re-chosen at every noise
+    value so that it fires at its state rates (``rates_hz``, S x N), pooled over states
+    in operational (rate-rescaled) time with state weights ``weights`` (see
+    ``_pooled_cv``). At a fixed rate, more noise means more irregular firing, so the
+    median CV rises with the noise and a bisection on ``log noise`` finds it. Targets
+    outside what the range allows give its ends.
 
     Parameters
     ----------
     target_cv : float
-        Data's median within-trial ISI CV over units.
+        The data's median time-rescaled ISI CV over units (see ``_data_isi_cv``).
     rates_hz : ndarray (S, N)
     weights : ndarray (S,), optional
         Occupancy of each state (default equal).
@@ -271,7 +269,7 @@ def noise_from_isi_cv(target_cv, rates_hz, weights=None, *, dt=1e-4, noise_range
     noise_range : tuple of float
         Smallest and largest noise allowed.
     tol : float
-        Relative tolerance on the noise.
+        Tolerance on ``log noise``.
 
     Returns
     -------
@@ -288,7 +286,7 @@ def noise_from_isi_cv(target_cv, rates_hz, weights=None, *, dt=1e-4, noise_range
     w = w / w.sum()
 
     def med(noise):
-        return float(np.median(_mixture_cv(r, w, noise, dt)))
+        return float(np.median(_pooled_cv(r, w, noise, dt)))
 
     lo, hi = np.log(noise_range[0]), np.log(noise_range[1])
     if med(math.exp(lo)) >= target_cv:
@@ -415,7 +413,10 @@ def fit_encoder(target_rates_hz, codes, *, noise, dt=1e-4, hypercube=False, refi
                 coef, sse = _gauss_newton(design, coef, target, noise, dt)
             else:
                 sse = np.sum((_phi(design @ coef, noise, dt) - target) ** 2, axis=0)
-            better = ~np.isfinite(best_sse) | (sse < best_sse - 1e-12 * np.maximum(best_sse, 1.0))
+            if axis == 0:
+                better = np.ones(n, dtype=bool)
+            else:
+                better = sse < best_sse - 1e-12 * np.maximum(best_sse, 1.0)
             best_sse = np.where(better, sse, best_sse)
             enc[better] = 0.0
             enc[better, axis] = coef[0, better]
@@ -543,21 +544,71 @@ def _weighted_rates(binned, decoding):
         return num / den[:, None] / binned.bin_size, den
 
 
-def _data_isi_cv(recording, binned):
-    from attractorfit.stats import isi_cv
+def rescaled_isi_cv(spike_times, window_start, rate_hz, bin_size):
+    """ISI CV of one unit in operational time (time rescaled by its rate), pooled.
 
+    Within every trial the unit's rate is piecewise constant per bin (``rate_hz[i]``,
+    one array per trial); spike times (absolute, s) inside the trial's window are mapped
+    through the integrated rate ``Lambda(t)`` (time rescaling, ref. [1]) and the
+    intervals between consecutive spikes of the same trial are pooled. A renewal process
+    whose rate changes by time rescaling keeps its own CV there, whatever the rate
+    changes (a gamma process of order k: 1 / sqrt(k)).
+
+    Parameters
+    ----------
+    spike_times : ndarray
+        Sorted spike times (s).
+    window_start : ndarray (n_trials,)
+        Start of each trial's first bin (s).
+    rate_hz : list of ndarray
+        Rate in every bin of every trial (Hz, > 0).
+    bin_size : float
+
+    Returns
+    -------
+    float
+        CV of the pooled rescaled intervals (NaN with fewer than 3 intervals).
+
+    References
+    ----------
+    .. [1] Brown EN, Barbieri R, Ventura V, Kass RE, Frank LM (2002) The time-rescaling
+       theorem and its application to neural spike train data analysis. Neural
+       Computation 14:325-346.
+    """
+    t = np.asarray(spike_times, float)
+    isis = []
+    for t0, lam in zip(window_start, rate_hz):
+        lam = np.asarray(lam, float)
+        t1 = t0 + lam.size * bin_size
+        sp = t[np.searchsorted(t, t0):np.searchsorted(t, t1)] - t0
+        if sp.size < 2:
+            continue
+        cum = np.concatenate([[0.0], np.cumsum(lam) * bin_size])
+        edges = np.arange(lam.size + 1) * bin_size
+        isis.append(np.diff(np.interp(sp, edges, cum)))
+    if not isis:
+        return float("nan")
+    x = np.concatenate(isis)
+    x = x[x > 0]
+    if x.size < 3:
+        return float("nan")
+    return float(x.std(ddof=1) / x.mean())
+
+
+def _data_isi_cv(recording, binned, decoding, rates_hz):
+    """Median over units of the time-rescaled ISI CV, with per-bin rates from the
+    states' posteriors (``sum_s p(s | bin) r_s``)."""
     ids = list(recording.unit_ids)
     pos = {u: i for i, u in enumerate(ids)}
     missing = [u for u in binned.unit_ids if u not in pos]
     if missing:
         raise InputError(f"recording: unit {missing[0]!r} of the binned counts is not in the "
                          "recording; pass the recording the counts were made from")
-    windows = np.column_stack([binned.window_start,
-                               binned.window_start + binned.n_valid * binned.bin_size])
-    order = np.argsort(windows[:, 0], kind="stable")
-    windows = windows[order]
-    cvs = np.array([isi_cv(recording.spike_times[pos[u]], windows=windows)
-                    for u in binned.unit_ids])
+    rates = _clip_rates(np.asarray(rates_hz, float))
+    lam = [np.asarray(p) @ rates for p in decoding.posteriors]          # per trial T x N
+    cvs = np.array([rescaled_isi_cv(recording.spike_times[pos[u]], binned.window_start,
+                                    [x[:, j] for x in lam], binned.bin_size)
+                    for j, u in enumerate(binned.unit_ids)])
     cvs = cvs[np.isfinite(cvs)]
     return float(np.median(cvs)) if cvs.size else float("nan")
 
@@ -1424,7 +1475,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     clipped = False
     if noise is None:
         if recording is not None:
-            data_cv = _data_isi_cv(recording, train_binned)
+            data_cv = _data_isi_cv(recording, train_binned, decoding, target_rates)
         if np.isfinite(data_cv) and data_cv > 0:
             noise, clipped = noise_from_isi_cv(data_cv, target_rates, target_occ, dt=dt)
             if clipped:
@@ -1449,14 +1500,18 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     slopes = _dphi(inputs, noise, dt)
     rate_r2 = centred_rate_r2(target_rates, model_u)
 
-    # Every rule gives D proportional to 1 / tau_s with E, bias and the rates fixed (the
-    # constraints and the Jacobian involve tau_s D only, the noise objective scales as
-    # 1 / tau_s^2), so refitting D at each tau_s is a rescaling of the tau_s = 1 solution.
+    # Every rule's problem depends on tau_s only through tau_s D (constraints, Jacobians)
+    # and an overall factor 1 / tau_s^2 of the noise objective, so the decoder refitted at
+    # tau_s is the one fitted at tau_ref times tau_ref / tau_s: D is refitted at every
+    # step by this rescaling (the optimized rule's solver is run once, at tau_ref, the
+    # geometric middle of the range, where its tolerances are well scaled).
+    tau_ref = math.sqrt(lo_tau * hi_tau)
     depth = np.full(n_states, float(margin))
-    dec1 = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=1.0, margin=depth)
+    dec1 = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=tau_ref, margin=depth)
 
     def build(tau, dec):
-        return LowRankNetwork(enc, dec.decoder / tau, bias=bias, threshold=THRESHOLD,
+        return LowRankNetwork(enc, dec.decoder * (tau_ref / tau), bias=bias,
+                              threshold=THRESHOLD,
                               reset=RESET, tau_m=TAU_M, tau_s=tau, refractory=REFRACTORY,
                               noise=noise)
 
@@ -1468,8 +1523,11 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         n_cal = max(20, int(math.ceil(CALIBRATION_SECONDS / mean_len)))
     else:
         n_cal = check_int("n_calibration_sims", n_calibration_sims, low=1)
-    pick = train[np.floor(np.arange(n_cal) * n_train / n_cal).astype(int)] if n_cal <= n_train \
-        else train[np.arange(n_cal) % n_train]
+    # calibration trials: a random subset of the training trials (all of them, repeated,
+    # when more are asked for), so that periodic label sequences are not aliased
+    pick_rng = np.random.default_rng(seed_alloc)
+    pick = np.concatenate([np.tile(train, n_cal // n_train),
+                           np.sort(pick_rng.choice(train, n_cal % n_train, replace=False))])
     cal_nvalid = binned.n_valid[pick]
     cal_labels = {key: np.asarray(v)[pick] for key, v in binned.labels.items()}
     cal_rows = np.full(n_cal, len(levels), dtype=np.int64)
@@ -1477,7 +1535,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         for i, v in enumerate(binned.labels[cond][pick]):
             if not _is_missing(v) and _level_text(v) in levels:
                 cal_rows[i] = levels.index(_level_text(v))
-    cal_first = _allocate_starts(cal_rows, start_probs, np.random.default_rng(seed_alloc))
+    cal_first = _allocate_starts(cal_rows, start_probs, pick_rng)
     cal_y0 = codes[cal_first].astype(float)
     cal_dur = cal_nvalid * binned.bin_size
     unit_ids = list(binned.unit_ids)
@@ -1525,29 +1583,34 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         else:
             xb, fb = x0, f0
         slope = 1.2           # d log(dwell) / d log(tau_s), updated from the data
+        grow = 1.0            # step multiplier, doubled while the dwell does not respond
         while (abs(f0) > tol and len(hist["tau_s"]) < max_evaluations
                and (xa is None or xb is None)):
             if xa is None:        # dwells too long: shorter tau_s
                 if xb <= a + 1e-9:
                     break
-                x1 = max(a, xb - min(max(fb / slope, 0.15), 1.5))
+                x1 = max(a, xb - grow * min(max(fb / slope, 0.15), 1.5))
                 f1 = record(math.exp(x1), dec, round_)
                 if f1 < 0:
                     xa, fa = x1, f1
                 else:
                     if fb - f1 > 0.05:
                         slope = max(0.3, (fb - f1) / (xb - x1))
+                    else:
+                        grow *= 2.0
                     xb, fb = x1, f1
             else:                 # dwells too short: longer tau_s
                 if xa >= b - 1e-9:
                     break
-                x1 = min(b, xa + min(max(-fa / slope, 0.15), 1.5))
+                x1 = min(b, xa + grow * min(max(-fa / slope, 0.15), 1.5))
                 f1 = record(math.exp(x1), dec, round_)
                 if f1 >= 0:
                     xb, fb = x1, f1
                 else:
                     if f1 - fa > 0.05:
                         slope = max(0.3, (f1 - fa) / (x1 - xa))
+                    else:
+                        grow *= 2.0
                     xa, fa = x1, f1
             f0 = f1
         side = 0
@@ -1581,7 +1644,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
             # deepen the wells of under-visited states, flatten the over-visited ones
             ratio = np.clip((target_occ + 0.01) / (occs[best_round] + 0.01), 1 / 3, 3.0)
             depth = np.clip(depths[best_round] * ratio, MARGIN_RANGE[0], MARGIN_RANGE[1])
-            dec_r = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=1.0,
+            dec_r = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=tau_ref,
                                 margin=depth)
             best_round = search(math.log(hist["tau_s"][best_round]), dec_r, round_)
     if bar is not None:
