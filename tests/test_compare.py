@@ -425,3 +425,27 @@ def test_reference_quantile_is_the_monte_carlo_critical_value():
     rate = np.mean(x[:, 0] > crit)
     # exact rate 1/21 = 0.0476; binomial s.e. over 4000 repetitions 0.0034
     assert abs(rate - 1 / 21) < 0.012
+
+
+def test_weighted_pools_equal_explicit_pooling():
+    # The fast pooled KS and log-rank (cumulative counts x weights) against the plain
+    # functions on explicitly concatenated samples (ks_statistic and logrank_test are
+    # checked against SciPy above).
+    from attractorfit.compare import _PooledDurations, _PooledValues
+
+    rng = np.random.default_rng(3)
+    vals = [np.round(rng.normal(size=rng.integers(5, 30)), 1) for _ in range(6)]
+    durs = [np.round(rng.exponential(1.0, rng.integers(3, 20)), 1) + 0.1 for _ in range(6)]
+    obs = [rng.random(d.size) < 0.7 for d in durs]
+    pv, pd = _PooledValues(vals), _PooledDurations(durs, obs)
+    target = np.round(rng.normal(0.2, 1.0, size=25), 1)
+    t_d = np.round(rng.exponential(1.2, 15), 1) + 0.1
+    t_o = rng.random(15) < 0.8
+    for w in (np.ones(6, int), np.array([0, 2, 1, 0, 3, 0]), np.array([1, 0, 0, 0, 0, 5])):
+        pooled = np.concatenate([np.tile(v, k) for v, k in zip(vals, w)])
+        assert pv.ks(w, target) == pytest.approx(ks_statistic(target, pooled), abs=1e-12)
+        d = np.concatenate([np.tile(x, k) for x, k in zip(durs, w)])
+        o = np.concatenate([np.tile(x, k) for x, k in zip(obs, w)])
+        assert pd.logrank(w, t_d, t_o).statistic == pytest.approx(
+            logrank_test(t_d, t_o, d, o).statistic, rel=1e-12)
+        np.testing.assert_array_equal(np.sort(pd.arrays(w)[0]), np.sort(d))

@@ -67,9 +67,10 @@ reference (``<name>_ref95``); a similarity (R^2) when it is >= the 5th percentil
 ceil(0.95 (B + 1))-th smallest of the B reference values, see
 :func:`reference_quantile`), so that data exchangeable with the surrogates are flagged
 at most 5% of the time; the rule then agrees with the Monte Carlo p-value
-(1 + #{reference as extreme}) / (B + 1) > 0.05 [2]_ for B >= 19. All of this runs on the held-out trials (the data's trials not used to fit the
-network) and the surrogates' trials at the same positions, so data and each
-surrogate have the same size. The confidence interval of each statistic resamples
+(1 + #{reference as extreme}) / (B + 1) > 0.05 [2]_ for B >= 19. All of this runs on
+the held-out trials (the data's trials not used to fit the network) and the
+surrogates' trials at the same positions, so data and each surrogate have the same
+size. The confidence interval of each statistic resamples
 the B surrogates with replacement (``n_boot`` times): it shows the Monte Carlo
 uncertainty of the ensemble, not the data's sampling error (that is what the
 reference distribution measures).
@@ -95,12 +96,12 @@ uses the sum over statistics of T / s, s the median reference distance of the
 statistic; left out of that sum are statistics the null cannot produce (ISI CV for
 count-level nulls), the log-rank statistic (it grows with the pool size) and unit mean
 rates (every null keeps them). Left out of a null's comparison altogether are the
-statistics each known null keeps by construction -- ``poisson``: mean rates; ``shuffle``: mean rates, Fano factors and ISI
-CVs (each unit's trains are the data's); ``dither``: everything but the ISI CV (the
-dithered trains keep the data's states and counts on time scales above the dither);
-``continuous``: mean rates. Refitted states are not used for nulls. The null
-surrogates are built from all the data's trials, the held-out ones included, which
-favours the null.
+statistics each known null keeps by construction -- ``poisson``: mean rates;
+``shuffle``: mean rates, Fano factors and ISI CVs (each unit's trains are the data's);
+``dither``: everything but the ISI CV (the dithered trains keep the data's states and
+counts on time scales above the dither); ``continuous``: mean rates. Refitted states
+are not used for nulls. The null surrogates are built from all the data's trials, the
+held-out ones included, which favours the null.
 
 These are statistical statements about models of the recording, not proof about the
 brain.
@@ -253,14 +254,26 @@ def logrank_test(durations_a, observed_a, durations_b, observed_b) -> LogRankRes
     times = np.unique(np.concatenate([da[oa], db[ob]]))
     if times.size == 0:
         return nan
-    sa, sb = np.sort(da), np.sort(db)
-    n_a = da.size - np.searchsorted(sa, times, side="left")
-    n_b = db.size - np.searchsorted(sb, times, side="left")
-    ea, eb = np.sort(da[oa]), np.sort(db[ob])
-    d_a = np.searchsorted(ea, times, side="right") - np.searchsorted(ea, times, side="left")
-    d_b = np.searchsorted(eb, times, side="right") - np.searchsorted(eb, times, side="left")
-    n = (n_a + n_b).astype(float)
-    d = (d_a + d_b).astype(float)
+    n_a, d_a = _at_risk_and_events(da, oa, times)
+    n_b, d_b = _at_risk_and_events(db, ob, times)
+    return _logrank_from_counts(n_a, d_a, n_b, d_b)
+
+
+def _at_risk_and_events(d, o, times):
+    """Durations >= t (at risk) and complete durations == t, at each of ``times``."""
+    sd, ed = np.sort(d), np.sort(d[o])
+    at_risk = d.size - np.searchsorted(sd, times, side="left")
+    events = np.searchsorted(ed, times, side="right") - np.searchsorted(ed, times, side="left")
+    return at_risk, events
+
+
+def _logrank_from_counts(n_a, d_a, n_b, d_b) -> LogRankResult:
+    """Log-rank chi-square from at-risk and event counts at the distinct event times."""
+    n = np.asarray(n_a + n_b, dtype=float)
+    d = np.asarray(d_a + d_b, dtype=float)
+    keep = n > 0
+    n, d = n[keep], d[keep]
+    n_a, d_a = np.asarray(n_a, dtype=float)[keep], np.asarray(d_a, dtype=float)[keep]
     frac = n_a / n
     o_e = float(np.sum(d_a - d * frac))
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -270,6 +283,85 @@ def logrank_test(durations_a, observed_a, durations_b, observed_b) -> LogRankRes
         return LogRankResult(float("nan"), float("nan"), o_e, var)
     chi2 = o_e * o_e / var
     return LogRankResult(float(chi2), float(sps.chi2.sf(chi2, 1)), o_e, var)
+
+
+class _PooledDurations:
+    """Durations of B surrogates (one state), pooled under integer weights.
+
+    Cumulative counts on the grid of distinct durations are stored per surrogate
+    (B x G), so a weighted pool costs one matrix-vector product, not a concatenation.
+    """
+
+    def __init__(self, durations, observed):
+        self.grid = np.unique(np.concatenate(durations)) if durations else np.zeros(0)
+        g = self.grid
+        self.le = np.array([np.searchsorted(np.sort(d), g, side="right") for d in durations],
+                           dtype=np.int64).reshape(len(durations), g.size)
+        self.ev = np.array([_at_risk_and_events(d, o, g)[1] for d, o in
+                            zip(durations, observed)],
+                           dtype=np.int64).reshape(len(durations), g.size)
+        self.n = np.array([len(d) for d in durations], dtype=np.int64)
+        self.durations, self.observed = durations, observed
+
+    def arrays(self, w):
+        wi = np.asarray(w, dtype=np.int64)
+        return (np.concatenate([np.tile(d, k) for d, k in zip(self.durations, wi)]),
+                np.concatenate([np.tile(o, k) for o, k in zip(self.observed, wi)]))
+
+    def logrank(self, w, d_t, o_t) -> LogRankResult:
+        """Log-rank test of durations (d_t, o_t) against the weighted pool."""
+        nan = LogRankResult(float("nan"), float("nan"), float("nan"), float("nan"))
+        d_t = np.asarray(d_t, dtype=float)
+        o_t = np.asarray(o_t, dtype=bool)
+        w = np.asarray(w, dtype=np.int64)
+        total = int(w @ self.n)
+        if d_t.size == 0 or total == 0:
+            return nan
+        le = w @ self.le
+        ev = w @ self.ev
+        times = np.unique(np.concatenate([self.grid[ev > 0], d_t[o_t]]))
+        if times.size == 0:
+            return nan
+        j = np.searchsorted(self.grid, times, side="left")        # first grid >= t
+        below = np.where(j > 0, le[np.clip(j - 1, 0, None)], 0)    # pool durations < t
+        on = (j < self.grid.size) & (self.grid[np.clip(j, 0, self.grid.size - 1)] == times)
+        n_b = total - below
+        d_b = np.where(on, ev[np.clip(j, 0, self.grid.size - 1)], 0)
+        n_a, d_a = _at_risk_and_events(d_t, o_t, times)
+        return _logrank_from_counts(n_a, d_a, n_b, d_b)
+
+
+class _PooledValues:
+    """Values (Fano, ISI CV, correlations) of B surrogates, pooled under weights."""
+
+    def __init__(self, values):
+        vals = [np.asarray(v, dtype=float) for v in values]
+        vals = [v[np.isfinite(v)] for v in vals]
+        self.values = vals
+        self.grid = np.unique(np.concatenate(vals)) if vals else np.zeros(0)
+        self.le = np.array([np.searchsorted(np.sort(v), self.grid, side="right")
+                            for v in vals], dtype=np.int64).reshape(len(vals),
+                                                                     self.grid.size)
+        self.n = np.array([v.size for v in vals], dtype=np.int64)
+
+    def arrays(self, w):
+        wi = np.asarray(w, dtype=np.int64)
+        return np.concatenate([np.tile(v, k) for v, k in zip(self.values, wi)])
+
+    def ks(self, w, target) -> float:
+        """Kolmogorov-Smirnov statistic of ``target`` against the weighted pool."""
+        t = np.sort(np.asarray(target, dtype=float)[np.isfinite(target)])
+        w = np.asarray(w, dtype=np.int64)
+        total = int(w @ self.n)
+        if t.size == 0 or total == 0:
+            return float("nan")
+        f_pool = (w @ self.le) / total                               # at grid points
+        f_t_grid = np.searchsorted(t, self.grid, side="right") / t.size
+        j = np.searchsorted(self.grid, t, side="right") - 1          # last grid <= t
+        f_pool_t = np.where(j >= 0, f_pool[np.clip(j, 0, None)], 0.0)
+        f_t = np.searchsorted(t, t, side="right") / t.size
+        return float(max(np.max(np.abs(f_t_grid - f_pool)) if self.grid.size else 0.0,
+                         np.max(np.abs(f_t - f_pool_t))))
 
 
 # --------------------------------------------------------------------------- summaries
@@ -442,21 +534,12 @@ class _Ensemble:
         self.rates = np.array([s.state_rates for s in it])
         self.mrates = np.array([s.mean_rates for s in it])
         S = self.occ.shape[1]
-        self.seg = []
-        for st in range(S):
-            d = [s.seg_dur[st] for s in it]
-            o = [s.seg_obs[st] for s in it]
-            src = np.concatenate([np.full(len(a), b) for b, a in enumerate(d)])
-            self.seg.append((np.concatenate(d), np.concatenate(o).astype(bool),
-                             src.astype(np.int64)))
+        self.seg = [_PooledDurations([s.seg_dur[st] for s in it],
+                                     [s.seg_obs[st] for s in it]) for st in range(S)]
         self.pooled = {}
         for key in ("fano", "corr", "cv"):
             vals = [getattr(s, key) for s in it]
-            if any(v is None for v in vals):
-                self.pooled[key] = None
-                continue
-            src = np.concatenate([np.full(len(v), b) for b, v in enumerate(vals)])
-            self.pooled[key] = (np.concatenate(vals), src.astype(np.int64))
+            self.pooled[key] = None if any(v is None for v in vals) else _PooledValues(vals)
         self.cond = {k: np.array([s.cond[k] for s in it]) for k in it[0].cond}
 
     def aggregate(self, w):
@@ -477,10 +560,10 @@ class _Ensemble:
         agg["rates"] = wmean(self.rates)
         agg["mrates"] = wmean(self.mrates)
         agg["trans"] = np.tensordot(w, self.trans, axes=1)
-        wi = w.astype(np.int64)
-        agg["seg"] = [(np.repeat(d, wi[src]), np.repeat(o, wi[src])) for d, o, src in self.seg]
+        agg["w"] = w.astype(np.int64)
+        agg["seg"] = self.seg
         for key, val in self.pooled.items():
-            agg[key] = None if val is None else np.repeat(val[0], wi[val[1]])
+            agg[key] = val
         agg["cond"] = {k: np.tensordot(w, v, axes=1) for k, v in self.cond.items()}
         return agg
 
@@ -544,8 +627,8 @@ def _stat(name, t, agg):
         return total_variation(t.occupancy, agg["occ"])
     if name == "dwell_logrank":
         tot, used = 0.0, 0
-        for s, (d, o) in enumerate(agg["seg"]):
-            r = logrank_test(t.seg_dur[s], t.seg_obs[s], d, o)
+        for s, pool in enumerate(agg["seg"]):
+            r = pool.logrank(agg["w"], t.seg_dur[s], t.seg_obs[s])
             if np.isfinite(r.statistic):
                 tot += r.statistic
                 used += 1
@@ -572,7 +655,7 @@ def _stat(name, t, agg):
         a, b = getattr(t, key), agg[key]
         if a is None or b is None:
             return float("nan")
-        return ks_statistic(a, b)
+        return b.ks(agg["w"], a)
     if name.startswith("condition_tvd["):
         label = name[len("condition_tvd["):-1]
         ft, fa = _row_normalise(t.cond[label]), _row_normalise(agg["cond"][label])
@@ -923,7 +1006,8 @@ class Comparison:
         ``<name>_ref05`` (R^2, where the rule is value >= 5th percentile),
         ``<name>_ci``, ``<name>_p`` (Monte Carlo p against the reference) and
         ``<name>_consistent``; per state ``dwell_logrank_p_per_state`` (asymptotic
-        log-rank p-values), ``dwell_logrank_chi2_per_state`` and ``dwell_ratio``; ``n_surrogates``, ``n_trials``, ``held_out``;
+        log-rank p-values), ``dwell_logrank_chi2_per_state`` and ``dwell_ratio``;
+        ``n_surrogates``, ``n_trials``, ``held_out``;
         ``refit`` (the same for refitted states); ``nulls`` (per null: verdict,
         p-values, text); ``text`` and ``caution``.
         """
@@ -1415,10 +1499,11 @@ def _assemble(data, pos, held_out, S, ds, ens, full, metrics, refit_metrics, dat
     occ_ci = np.asarray(occ_ci)
     occ_model_ci = np.nanquantile(ens.occ, [0.025, 0.975], axis=0).T
     surv_d = [kaplan_meier(ds.seg_dur[s], ds.seg_obs[s]) for s in range(S)]
-    surv_m = [kaplan_meier(*full["seg"][s]) for s in range(S)]
+    pooled = [full["seg"][s].arrays(full["w"]) for s in range(S)]
+    surv_m = [kaplan_meier(*pooled[s]) for s in range(S)]
     cens_d = [ds.seg_dur[s][~ds.seg_obs[s]] for s in range(S)]
-    cens_m = [full["seg"][s][0][~full["seg"][s][1]] for s in range(S)]
-    lr = [logrank_test(ds.seg_dur[s], ds.seg_obs[s], *full["seg"][s]) for s in range(S)]
+    cens_m = [pooled[s][0][~pooled[s][1]] for s in range(S)]
+    lr = [logrank_test(ds.seg_dur[s], ds.seg_obs[s], *pooled[s]) for s in range(S)]
     with np.errstate(invalid="ignore", divide="ignore"):
         ratio = ds.mean_dwell / full["mdw"]
     ks_p = {}
@@ -1426,6 +1511,7 @@ def _assemble(data, pos, held_out, S, ds, ens, full, metrics, refit_metrics, dat
         a, b = getattr(ds, key), full.get(key)
         if a is None or b is None:
             continue
+        b = b.arrays(full["w"])
         a, b = a[np.isfinite(a)], b[np.isfinite(b)]
         ks_p[name] = float(sps.ks_2samp(a, b).pvalue) if a.size and b.size else float("nan")
     conditions = {}

@@ -113,15 +113,9 @@ def trial_groups(binned, condition) -> tuple:
     ``condition`` is a label column of ``binned.labels`` (levels compared as text) or
     None (one group holding every trial).
     """
-    if condition is None:
-        return np.zeros(binned.n_trials, dtype=np.int64), ["all"]
-    if condition not in binned.labels:
-        raise InputError(f"condition: label column {condition!r} not found; available: "
-                         f"{sorted(binned.labels)}")
-    vals = [str(v) for v in np.asarray(binned.labels[condition]).tolist()]
-    levels = sorted(set(vals))
-    pos = {v: k for k, v in enumerate(levels)}
-    return np.array([pos[v] for v in vals], dtype=np.int64), levels
+    from attractorfit.states._discreteness import _conditions
+
+    return _conditions(binned, condition)
 
 
 def _window_edges(binned):
