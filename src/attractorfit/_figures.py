@@ -158,24 +158,17 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
             "Latent trajectories (factor analysis of square-root counts) with each state's "
             "mean position marked by its vertex code.")
     cmp_ = getattr(result, "comparison", None)
-    occ_model = ci_model = None
-    if cmp_ is not None and hasattr(cmp_, "figure_arrays"):
-        arr = cmp_.figure_arrays()
-    else:
-        arr = {}
-    fig = plots.occupancy_bars(dec.occupancy, arr.get("occupancy_model", occ_model),
-                               arr.get("occupancy_model_ci", ci_model),
-                               arr.get("occupancy_nulls"), state_labels=labels)
-    add(blocks, fig, "occupancy", "Fraction of assigned time spent in each state.")
-    fig = plots.dwell_survival(_survival_dict(dec), arr.get("survival_model"),
-                               state_labels=labels)
-    add(blocks, fig, "dwell_survival",
-        "Dwell-time survival per state (Kaplan-Meier; ticks mark censored dwells cut by "
-        "a trial edge).")
-    fig = plots.transition_matrices(dec.transition_probs, arr.get("transitions_model"),
-                                    state_labels=labels, off_diagonal=True,
-                                    quantity="probability of the next state")
-    add(blocks, fig, "transitions", "Which state follows which (rows: from, columns: to).")
+    if cmp_ is None:
+        fig = plots.occupancy_bars(dec.occupancy, state_labels=labels)
+        add(blocks, fig, "occupancy", "Fraction of assigned time spent in each state.")
+        fig = plots.dwell_survival(_survival_dict(dec), state_labels=labels)
+        add(blocks, fig, "dwell_survival",
+            "Dwell-time survival per state (Kaplan-Meier; ticks mark censored dwells cut by "
+            "a trial edge).")
+        fig = plots.transition_matrices(dec.transition_probs, state_labels=labels,
+                                        off_diagonal=True,
+                                        quantity="probability of the next state")
+        add(blocks, fig, "transitions", "Which state follows which (rows: from, columns: to).")
     cond = categorical_condition(dec)
     if cond is not None:
         tab = dec.conditions[cond]
@@ -199,13 +192,17 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
         sections.append(Section("Discreteness test", blocks))
         verdicts.append(Verdict("Discrete states", d.verdict, d.p_value, d.text(),
                                 assumptions=_assumptions(result)))
-    for extra in getattr(result, "extra_report", lambda: [])() if callable(
-            getattr(result, "extra_report", None)) else []:
-        sections.append(extra)
+    nf = getattr(result, "network_fit", None)
+    if cmp_ is not None and nf is not None:
+        sec, v, t = _model_sections(result, labels, add)
+        sections.extend(sec)
+        verdicts.extend(v)
 
     tables = {"states": (["state", "vertex", "occupancy", "mean_dwell_s"],
                          [[s, t, float(o), float(m)] for s, (t, o, m) in
                           enumerate(zip(sf.vertex_text, dec.occupancy, dec.mean_dwell_s))])}
+    if cmp_ is not None:
+        tables.update(_comparison_tables(cmp_))
     if sf.choice is not None:
         ch = sf.choice
         tables["state_count_choice"] = (["n_states", "loglik", "bic", "heldout_per_bin"],
@@ -248,4 +245,129 @@ def _assumptions(result) -> dict:
     if d is not None:
         out["null"] = d.description
         out["bootstrap replicates"] = str(d.n_boot)
+    return out
+
+
+def _model_sections(result, labels, add):
+    """Sections for the fitted network and the model-vs-data comparison."""
+    nf, c = result.network_fit, result.comparison
+    where = "held-out trials" if c.held_out else "all trials (no held-out set)"
+    sections, verdicts = [], []
+    blocks = [f"The data's state model decodes the data and {c.n_surrogates} surrogate "
+              f"recordings of the fitted network on {c.n_trials} {where}; every statistic is "
+              "judged against the spread of the same statistic between independent model "
+              "surrogates of the data's size."]
+    nulls = {n.replace("_", " "): (r.occupancy, r.occupancy_ci) for n, r in c.nulls.items()}
+    fig = plots.occupancy_bars(c.occupancy_data, c.occupancy_model, c.occupancy_model_ci,
+                               nulls or None, ci_data=c.occupancy_data_ci, state_labels=labels)
+    add(blocks, fig, "occupancy", "Occupancy per state: data (95% trial-bootstrap interval), "
+        "fitted-network surrogates and null surrogates (2.5-97.5 percentiles over single "
+        "surrogates), all decoded with the data's state model.")
+    sd, sm = c.survival_for_plot()
+    fig = plots.dwell_survival(sd, sm, state_labels=labels)
+    add(blocks, fig, "dwell_survival",
+        "Dwell-time survival per state, data vs surrogates (Kaplan-Meier; ticks mark dwells "
+        "cut by a trial edge, treated as censored).")
+    fig = plots.transition_matrices(c.transitions_data, c.transitions_model, state_labels=labels,
+                                    off_diagonal=True, quantity="probability of the next state")
+    add(blocks, fig, "transitions", "Which state follows which, data and surrogates "
+        "(rows: from, columns: to).")
+    d, m, st = c.centred_rates()
+    r2 = c.metrics.get("rate_r2")
+    fig = plots.rate_scatter(d, m, r2=float(r2.value) if r2 else float("nan"),
+                             r2_ref95=float(r2.ref) if r2 else None, groups=st,
+                             group_labels=labels, xlabel="data rate - unit mean (Hz)",
+                             ylabel="surrogate rate - unit mean (Hz)")
+    add(blocks, fig, "rate_scatter", "State modulation of every unit's rate (per-unit x "
+        "per-state rates, centred per unit), data vs surrogates, with the identity line.")
+    panels = {"ISI CV": (c.isi_cv_data, None if c.isi_cv_model is None else
+                         np.ravel(c.isi_cv_model)),
+              "Fano factor (100 ms counts)": (c.fano_data, np.ravel(c.fano_model)),
+              "pairwise count correlation": (c.correlation_data, np.ravel(c.correlation_model))}
+    panels = {k: v for k, v in panels.items() if v[0] is not None and np.size(v[0])}
+    fig = plots.distribution_panels(panels, notes={"ISI CV": "multi-units: compare with "
+                                                             "caution"})
+    add(blocks, fig, "single_unit_statistics", "Single-unit and pairwise statistics, data vs "
+        "pooled surrogates (empirical cumulative distributions).")
+    for name, cd in c.conditions.items():
+        lv = [str(x) for x in cd["levels"]]
+        table = {"data": {a: np.asarray(f) for a, f in zip(lv, cd["fraction_data"])},
+                 "surrogate": {a: np.asarray(f) for a, f in zip(lv, cd["fraction_model"])}}
+        match = {a: int(s) for a, s in zip(lv, cd["matching_state"])}
+        fig = plots.state_by_condition(table, matching={"data": match, "surrogate": match},
+                                       state_labels=labels, xlabel=name)
+        add(blocks, fig, f"state_by_{_safe(name)}", f"Fraction of time in each state by "
+            f"'{name}', data and surrogates; outlined: the level's cue-matching state.")
+    if result.surrogate_example is not None:
+        s_rec, s_bin, s_dec = result.surrogate_example
+        x = s_bin.sequences(dtype=float)[0]
+        from scipy.ndimage import gaussian_filter1d
+
+        rate = gaussian_filter1d(x, 0.1 / s_bin.bin_size, axis=0) / s_bin.bin_size
+        pat = nf.target_rates_hz
+        ov = _cosine(rate, pat)
+        times = np.arange(len(x)) * s_bin.bin_size
+        fig = plots.pattern_overlap_time(times, ov, pattern_labels=labels,
+                                         segments=_segments_of_trial(s_dec, 0))
+        add(blocks, fig, "pattern_overlap", "Overlap (cosine similarity, rates smoothed over "
+            "100 ms) of one surrogate trial's population rate with each state's rate pattern.")
+    sections.append(Section("Model vs data", blocks))
+
+    blocks = []
+    block = nf.summary_block()
+    for note in block.get("notes", []):
+        blocks.append(note)
+    used = np.ones(nf.n_states, bool)
+    fig = plots.model_diagnostics(np.asarray(nf.margins, float),
+                                  np.abs(nf.decoder_residual * np.ones(nf.n_states)),
+                                  np.asarray(nf.readout_noise_ratio, float),
+                                  capacity=None, load=float(nf.n_states),
+                                  vertex_labels=nf.vertex_text, used=used)
+    add(blocks, fig, "model_diagnostics", "Fitted network: stability margin at each state's "
+        "vertex (rate picture; > 0 stable), decoder constraint residual, readout shot-noise "
+        "s.d. over the vertex spacing, and the number of patterns held.")
+    sections.append(Section("Fitted network", blocks))
+
+    ok = [m for m in c.metrics.values() if m.consistent is not None]
+    n_ok = sum(bool(m.consistent) for m in ok)
+    verdicts.append(Verdict(
+        "Network reproduces the data", "consistent" if ok and n_ok == len(ok) else
+        "not_consistent", None,
+        f"{n_ok} of {len(ok)} statistics of the held-out data fall within the spread between "
+        "independent model surrogates. " + " ".join(c.text[:3]),
+        assumptions={"compared trials": where, "surrogates": str(c.n_surrogates),
+                     "decoder rule": nf.rule, "tau_s": f"{nf.tau_s * 1e3:.0f} ms",
+                     "membrane noise": f"{nf.noise:.3g}",
+                     "states decoded with": "the data's fitted Poisson HMM"}))
+    for name, r in c.nulls.items():
+        verdicts.append(Verdict(f"Network vs {name} null", r.verdict, r.p_network_better,
+                                r.text, assumptions={"null": r.description,
+                                                     "null surrogates": str(r.n_surrogates)}))
+    return sections, verdicts, None
+
+
+def _cosine(rate, patterns):
+    a = rate / np.maximum(np.linalg.norm(rate, axis=1, keepdims=True), 1e-12)
+    b = patterns / np.maximum(np.linalg.norm(patterns, axis=1, keepdims=True), 1e-12)
+    return a @ b.T
+
+
+def _safe(name: str) -> str:
+    return "".join(ch if ch.isalnum() else "_" for ch in str(name))[:40]
+
+
+def _comparison_tables(c) -> dict:
+    rows = []
+    for kind, metrics in (("decoded", c.metrics), ("refitted", c.refit_metrics)):
+        for m in metrics.values():
+            rows.append([kind, m.name, float(m.value), m.ref_suffix, float(m.ref),
+                         float(m.p_value), "" if m.consistent is None else
+                         ("yes" if m.consistent else "no")])
+    out = {"comparison": (["states", "statistic", "value", "reference", "reference_value",
+                           "p_value", "consistent"], rows)}
+    nrows = [[n, r.verdict, float(r.p_network_better), float(r.p_null_better),
+              int(r.n_surrogates)] for n, r in c.nulls.items()]
+    if nrows:
+        out["nulls"] = (["null", "verdict", "p_network_better", "p_null_better",
+                         "n_surrogates"], nrows)
     return out
