@@ -385,3 +385,25 @@ def test_attractor_input_errors():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         decoder_pseudoinverse(r, np.ones((2, 4)), tau_s=0.01)  # rank-deficient: no warning
+
+
+def test_more_input_errors():
+    enc = hypercube_encoder(8, 2, rng=0)
+    net = LowRankNetwork(enc, np.zeros((2, 8)), bias=1.0)
+    with pytest.raises(InputError, match=r"y: expected a last dimension of 2"):
+        net.rates_at(np.zeros(3))
+    with pytest.raises(InputError, match="gain: expected a number or 6 values"):
+        hypercube_encoder(6, 1, gain=[1.0, 2.0])
+    r = np.ones((8, 4))
+    with pytest.raises(InputError, match="the optimized rule needs both"):
+        decoder_optimized(r, np.ones((2, 4)), tau_s=0.01, encoder=None, slopes=None)
+    big = LowRankNetwork(np.zeros((4, 13)), np.zeros((13, 4)), bias=1.0)
+    with pytest.raises(InputError, match="starts: no starting points"):
+        fixed_points(big, grid=0)
+    with pytest.raises(InputError, match=r"codes: expected shape \(P, K\) with K = 2"):
+        pattern_completion(net, np.ones((2, 3)))
+    with pytest.raises(InputError, match="loads: expected P/N values > 0"):
+        binary_capacity(20, [-0.1])
+    silent = LowRankNetwork(np.zeros((3, 1)), np.zeros((1, 3)), bias=0.0)
+    with pytest.raises(InputError, match="contains no spikes"):
+        silent.simulate(0.01, seed=0).to_recording()

@@ -292,3 +292,17 @@ def test_simulate_input_errors():
         res.to_recording(labels={"start": [1, 2]})
     with pytest.raises(InputError, match="unit_ids: got 1 ids for 4 neurons"):
         res.to_recording(unit_ids=["x"])
+
+
+def test_parameters_round_trip_through_npz(tmp_path):
+    net = _small_network()
+    np.savez(tmp_path / "model.npz", **net.to_dict())
+    with np.load(tmp_path / "model.npz") as f:
+        back = LowRankNetwork.from_dict(f)
+    a = net.simulate(0.05, seed=1)
+    b = back.simulate(0.05, seed=1)
+    for x, y in zip(a.spike_times, b.spike_times):
+        np.testing.assert_array_equal(x, y)
+    assert back.tau_s == net.tau_s and back.refractory == net.refractory
+    with pytest.raises(InputError, match=r"network parameters: missing \['tau_m'\]"):
+        LowRankNetwork.from_dict({k: v for k, v in net.to_dict().items() if k != "tau_m"})

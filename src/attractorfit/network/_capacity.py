@@ -17,6 +17,7 @@ References
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -234,9 +235,8 @@ class CapacityResult:
         Fraction of starts whose end state is closer (by that overlap) to the target
         pattern than to any other and has overlap >= ``threshold``.
     fraction_held : ndarray (L,)
-        Rate picture: fraction of patterns whose vertex holds (start within 0.05 a of it,
-        s.d. per coordinate; every coordinate still within ``vertex_tol`` of it after 40
-        ``tau_s``). Spiking: same as ``fraction_recalled`` from uncorrupted starts.
+        The same as ``fraction_recalled`` for starts at the vertices themselves (rate
+        picture: nudged by 0.05 a, s.d. per coordinate): does each pattern hold?
     residual : ndarray (L,)
         Relative constraint residual of the decoder.
     median_margin : ndarray (L,)
@@ -301,8 +301,6 @@ def _decode(rule, pats, enc, tau_s, margin):
     if rule == "pseudoinverse":
         return decoder_pseudoinverse(pats.rates, x, tau_s=tau_s, encoder=enc,
                                      slopes=pats.slopes)
-    import warnings
-
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         return decoder_optimized(pats.rates, x, tau_s=tau_s, encoder=enc, slopes=pats.slopes,
@@ -312,7 +310,7 @@ def _decode(rule, pats, enc, tau_s, margin):
 def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", patterns="binary",
                    method="rate", n_dims=None, coding=0.5, pattern_rates=(0.5, 40.0),
                    gain=0.6, bias=1.0, noise=0.2, tau_s=0.05, margin=0.2, corruption=0.1,
-                   n_starts=2, threshold=0.9, dt=1e-4, duration=0.5, vertex_tol=0.25,
+                   n_starts=2, n_repeats=1, threshold=0.9, dt=1e-4, duration=0.5,
                    rng=None):
     """Retrieval overlap versus load P/N, and the capacity.
 
@@ -361,13 +359,14 @@ def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", patterns="binary",
         Corruption level of the starts.
     n_starts : int
         Corrupted starts per pattern.
+    n_repeats : int
+        Independent networks per load (scores are averaged).
     threshold : float
         Overlap below which retrieval counts as lost (defines ``capacity``).
     dt : float
         Simulator step (and step of the transfer function).
     duration : float
         Simulated time per start for ``method='spiking'`` (s).
-    vertex_tol : float
     rng : None, int or numpy.random.Generator
 
     Returns
@@ -393,8 +392,10 @@ def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", patterns="binary",
     coding = check_fraction("coding", coding)
     corruption = check_fraction("corruption", corruption)
     n_starts = check_int("n_starts", n_starts, low=1)
+    n_repeats = check_int("n_repeats", n_repeats, low=1)
     rng = check_rng(rng)
     n_pat = np.maximum(1, np.round(loads * n).astype(int))
+    k = None
     if patterns == "vertices":
         if n_dims is None:
             n_dims = int(min(16, max(4, np.ceil(np.log2(4 * n_pat.max())))))
@@ -402,63 +403,34 @@ def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", patterns="binary",
         if n_pat.max() > 2 ** k:
             raise InputError(f"loads: {int(n_pat.max())} patterns do not fit on the "
                              f"{2 ** k} vertices of a {k}-dimensional cube; raise n_dims")
-    keys = ("overlap", "recalled", "held", "resid", "margin", "reached", "noise", "k")
+    keys = ("overlap", "recalled", "held", "resid", "margin", "reached", "noise")
     out = {key: [] for key in keys}
     shared = float("nan")
     for p in n_pat:
-        if patterns == "binary":
-            enc, codes = _binary_network(n, p, rng, coding=coding,
-                                         pattern_rates=pattern_rates, bias=bias, noise=noise,
-                                         dt=dt)
-        else:
-            enc, codes = _vertex_network(n, p, k, rng, gain=gain)
-        pats = vertex_patterns(enc, codes, bias=bias, noise=noise, dt=dt)
-        res = _decode(rule, pats, enc, tau_s, margin)
-        net = LowRankNetwork(enc, res.decoder, bias=bias, noise=noise, tau_s=tau_s)
-        starts, owner = [], []
-        for m in range(p):
-            bad = _corrupt(pats.rates[:, m], corruption, n_starts, rng)
-            starts.append(tau_s * bad @ res.decoder.T)
-            owner.append(np.full(n_starts, m))
-        starts, owner = np.vstack(starts), np.concatenate(owner)
-        if method == "rate":
-            nudged = codes + rng.normal(0.0, 0.05, size=codes.shape)
-            ends = rate_flow(net, np.vstack([starts, nudged]), dt=dt)
-            ends, held_ends = ends[:-p], ends[-p:]
-            end_rates = np.asarray(net.rates_at(ends, dt=dt), dtype=float)
-            held = np.max(np.abs(held_ends - codes), axis=1) < vertex_tol
-        else:
-            exact = codes.astype(float)
-            sim = net.simulate(duration, dt=dt, n_trials=starts.shape[0] + p,
-                               y0=np.vstack([starts, exact]), seed=rng)
-            t0 = 0.6 * duration
-            end_all = np.array([[np.sum(t >= t0) for t in trial] for trial in sim.trials],
-                               dtype=float) / (duration - t0)
-            end_rates = end_all[:-p]
-            ov_held = overlaps(end_all[-p:], pats.rates.T, center=True)
-            held = (np.argmax(ov_held, axis=1) == np.arange(p)) & (
-                ov_held[np.arange(p), np.arange(p)] >= threshold)
-        ov = overlaps(end_rates, pats.rates.T, center=True)
-        own = ov[np.arange(owner.size), owner]
-        ok = (np.argmax(ov, axis=1) == owner) & (own >= threshold)
-        out["overlap"].append(float(own.mean()))
-        out["recalled"].append(float(ok.mean()))
-        out["held"].append(float(held.mean()))
-        out["resid"].append(res.residual)
-        out["margin"].append(float(np.median(res.margins)))
-        out["reached"].append(bool(res.success))
-        out["noise"].append(float(np.median(readout_noise_ratio(net, codes, dt=dt))))
-        out["k"].append(net.rank)
-        if p > 1:
-            a = (pats.rates > np.median(pats.rates)).astype(float)
-            both = a.T @ a
-            count = a.sum(axis=0)
-            iu = np.triu_indices(p, 1)
-            shared = float(np.mean(both[iu] / np.maximum(np.minimum.outer(count, count)[iu],
-                                                         1)))
+        acc = {key: [] for key in keys}
+        for _ in range(n_repeats):
+            if patterns == "binary":
+                enc, codes = _binary_network(n, p, rng, coding=coding,
+                                             pattern_rates=pattern_rates, bias=bias,
+                                             noise=noise, dt=dt)
+            else:
+                enc, codes = _vertex_network(n, p, k, rng, gain=gain)
+            pats = vertex_patterns(enc, codes, bias=bias, noise=noise, dt=dt)
+            res = _decode(rule, pats, enc, tau_s, margin)
+            net = LowRankNetwork(enc, res.decoder, bias=bias, noise=noise, tau_s=tau_s)
+            _retrieve(net, pats, res, acc, rng, method=method, corruption=corruption,
+                      n_starts=n_starts, threshold=threshold, dt=dt, duration=duration)
+            if p > 1:
+                shared = _shared_active(pats.rates)
+        for key in keys:
+            out[key].append(bool(np.all(acc[key])) if key == "reached"
+                            else float(np.mean(acc[key])))
     overlap = np.array(out["overlap"])
     return CapacityResult(rule=rule, patterns=patterns, method=method, loads=loads,
-                          n_patterns=n_pat, n_dims=np.array(out["k"]), mean_overlap=overlap,
+                          n_patterns=n_pat,
+                          n_dims=n_pat.copy() if patterns == "binary" else np.full(n_pat.size,
+                                                                                   k),
+                          mean_overlap=overlap,
                           fraction_recalled=np.array(out["recalled"]),
                           fraction_held=np.array(out["held"]),
                           residual=np.array(out["resid"]),
@@ -467,6 +439,50 @@ def capacity_sweep(n_neurons, loads, *, rule="pseudoinverse", patterns="binary",
                           noise_ratio=np.array(out["noise"]), shared_active=shared,
                           capacity=_crossing(loads, overlap, threshold),
                           threshold=threshold)
+
+
+def _shared_active(rates):
+    """Mean fraction of active neurons shared by two patterns (active: above the median)."""
+    a = (rates > np.median(rates)).astype(float)
+    both = a.T @ a
+    count = a.sum(axis=0)
+    iu = np.triu_indices(rates.shape[1], 1)
+    return float(np.mean(both[iu] / np.maximum(np.minimum.outer(count, count)[iu], 1)))
+
+
+def _retrieve(net, pats, res, acc, rng, *, method, corruption, n_starts, threshold, dt,
+              duration):
+    """Run one network from corrupted patterns and from its vertices; append the scores."""
+    p = pats.codes.shape[0]
+    codes = pats.codes.astype(float)
+    starts, owner = [], []
+    for m in range(p):
+        bad = _corrupt(pats.rates[:, m], corruption, n_starts, rng)
+        starts.append(net.tau_s * bad @ res.decoder.T)
+        owner.append(np.full(n_starts, m))
+    starts, owner = np.vstack(starts), np.concatenate(owner)
+    if method == "rate":
+        nudged = codes + rng.normal(0.0, 0.05, size=codes.shape)
+        ends = rate_flow(net, np.vstack([starts, nudged]), dt=dt)
+        end_rates = np.asarray(net.rates_at(ends, dt=dt), dtype=float)
+    else:
+        sim = net.simulate(duration, dt=dt, n_trials=starts.shape[0] + p,
+                           y0=np.vstack([starts, codes]), seed=rng)
+        t0 = 0.6 * duration
+        end_rates = np.array([[np.sum(t >= t0) for t in trial] for trial in sim.trials],
+                             dtype=float) / (duration - t0)
+    ov = overlaps(end_rates, pats.rates.T, center=True)
+    target = np.concatenate([owner, np.arange(p)])
+    own = ov[np.arange(target.size), target]
+    ok = (np.argmax(ov, axis=1) == target) & (own >= threshold)
+    n_c = owner.size
+    acc["overlap"].append(float(own[:n_c].mean()))
+    acc["recalled"].append(float(ok[:n_c].mean()))
+    acc["held"].append(float(ok[n_c:].mean()))
+    acc["resid"].append(res.residual)
+    acc["margin"].append(float(np.median(res.margins)))
+    acc["reached"].append(bool(res.success))
+    acc["noise"].append(float(np.median(readout_noise_ratio(net, pats.codes, dt=dt))))
 
 
 # ------------------------------------------------------------- binary limit

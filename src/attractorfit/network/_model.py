@@ -245,6 +245,33 @@ class LowRankNetwork:
         self.tau_s = check_positive("tau_s", tau_s)
         self.refractory = check_nonnegative("refractory", refractory)
 
+    # ------------------------------------------------------------ parameters
+    _ARRAYS = ("encoder", "decoder", "bias", "threshold", "reset", "noise")
+    _SCALARS = ("tau_m", "tau_s", "refractory")
+
+    def to_dict(self) -> dict:
+        """All parameters as a dict of arrays (e.g. for ``numpy.savez``)."""
+        out = {name: getattr(self, name).copy() for name in self._ARRAYS}
+        out.update({name: np.float64(getattr(self, name)) for name in self._SCALARS})
+        return out
+
+    @classmethod
+    def from_dict(cls, params) -> "LowRankNetwork":
+        """Rebuild (and re-validate) a network from :meth:`to_dict` output or an npz file.
+
+        Raises
+        ------
+        InputError
+            A missing parameter, or any check of the constructor.
+        """
+        missing = [k for k in cls._ARRAYS + cls._SCALARS if k not in params]
+        if missing:
+            raise InputError(f"network parameters: missing {missing}; expected the keys "
+                             "written by LowRankNetwork.to_dict")
+        kw = {k: np.asarray(params[k]) for k in cls._ARRAYS[2:]}
+        kw.update({k: float(np.asarray(params[k])) for k in cls._SCALARS})
+        return cls(np.asarray(params["encoder"]), np.asarray(params["decoder"]), **kw)
+
     # ----------------------------------------------------------------- shape
     @property
     def n_neurons(self) -> int:

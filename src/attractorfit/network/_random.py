@@ -96,6 +96,20 @@ def next_double(s):
 
 
 @njit(cache=True)
+def _draw(s, zw):
+    """One ziggurat candidate: layer index, sign, 52-bit magnitude and the value."""
+    r = next_u64(s)
+    idx = np.intp(r & np.uint64(0xFF))
+    r >>= np.uint64(8)
+    neg = (r & np.uint64(1)) != np.uint64(0)
+    rabs = np.int64((r >> np.uint64(1)) & np.uint64(0x000FFFFFFFFFFFFF))
+    x = rabs * zw[idx]
+    if neg:
+        x = -x
+    return idx, neg, rabs, x
+
+
+@njit(cache=True)
 def normal_slow(s, idx, x, neg, zk, zw, zf):
     """Rejection branches of the ziggurat, entered for about 1.5% of the draws."""
     while True:
@@ -107,14 +121,7 @@ def normal_slow(s, idx, x, neg, zk, zw, zf):
                     return -(_R + xx) if neg else _R + xx
         if (zf[idx - 1] - zf[idx]) * next_double(s) + zf[idx] < math.exp(-0.5 * x * x):
             return x
-        r = next_u64(s)
-        idx = np.intp(r & np.uint64(0xFF))
-        r >>= np.uint64(8)
-        neg = (r & np.uint64(1)) != np.uint64(0)
-        rabs = np.int64((r >> np.uint64(1)) & np.uint64(0x000FFFFFFFFFFFFF))
-        x = rabs * zw[idx]
-        if neg:
-            x = -x
+        idx, neg, rabs, x = _draw(s, zw)
         if rabs < zk[idx]:
             return x
 
@@ -124,19 +131,12 @@ def fill_normals(s, out, zk, zw, zf):
     """Fill ``out`` with standard normals (ziggurat: 256 layers, 8 index bits, 1 sign bit,
     52-bit magnitude from one 64-bit output; the rare rejections in :func:`normal_slow`).
 
-    The fast path is written out here, not called, so that it stays inlined in the loop;
-    all integer work is signed 64-bit after masking (mixing unsigned and signed integers
-    makes numba fall back to floating point).
+    Only the rare rejections call out of the loop; all integer work is signed 64-bit
+    after masking (mixing unsigned and signed integers makes numba fall back to floating
+    point, several times slower).
     """
     for i in range(out.shape[0]):
-        r = next_u64(s)
-        idx = np.intp(r & np.uint64(0xFF))
-        r >>= np.uint64(8)
-        neg = (r & np.uint64(1)) != np.uint64(0)
-        rabs = np.int64((r >> np.uint64(1)) & np.uint64(0x000FFFFFFFFFFFFF))
-        x = rabs * zw[idx]
-        if neg:
-            x = -x
+        idx, neg, rabs, x = _draw(s, zw)
         if rabs >= zk[idx]:
             x = normal_slow(s, idx, x, neg, zk, zw, zf)
         out[i] = x

@@ -307,8 +307,7 @@ def fixed_points(net, *, codes=None, starts=None, scale=1.0, dt=1e-4, grid=5, n_
     ends = rate_flow(net, all_starts, dt=dt)
     points, counts = [], []
     unconverged = 0
-    order = np.lexsort(np.round(ends / (1e-4 * scale)).T[::-1])
-    for y in ends[order]:
+    for y in ends:
         if points and np.min(np.linalg.norm(np.array(points) - y, axis=1)) < 1e-4 * scale:
             counts[int(np.argmin(np.linalg.norm(np.array(points) - y, axis=1)))] += 1
             continue

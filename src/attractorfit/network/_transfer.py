@@ -36,6 +36,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
+from attractorfit._validation import check_array, check_positive
+from attractorfit.errors import InputError
+
 __all__ = [
     "siegert_rate",
     "siegert_slope",
@@ -269,9 +272,6 @@ def transfer_inverse(rate, sigma, *, tau_m=0.02, threshold=1.0, reset=0.0, refra
         Negative or non-finite target rates, rates at or above saturation, or
         ``min_rate <= 0``.
     """
-    from attractorfit._validation import check_array, check_positive
-    from attractorfit.errors import InputError
-
     rate = check_array("rate", rate, dtype=float)
     min_rate = check_positive("min_rate", min_rate)
     if rate.size and rate.min() < 0:
