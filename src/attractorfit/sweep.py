@@ -45,10 +45,12 @@ Determinism
 -----------
 Every random stream of a task is ``SeedSequence(entropy=seed, spawn_key=k)`` where ``k``
 is four 32-bit words of the SHA-256 of a text naming the task's parameters (see
-:func:`key_stream`), never the task's position in a list. Streams that must be shared
-between tasks are keyed by the parameters they depend on: the resampling, the folds
-and the latent dimension by (input, replicate); the state fit by (input, replicate,
-S); the network by the full task key. Inside every task BLAS/OpenMP pools are pinned
+:func:`key_stream`), never the task's position in a list. Each part is keyed by the
+parameters it depends on: the resampling, the folds and the latent dimension by
+(input, replicate); the state fit and its held-out fits by (input, replicate, S); the
+codes by (input, replicate, S, K); the network by the full task key. So tasks that
+differ only in K or the rule share the same state fit, and replicate 0 of a bootstrap
+sweep repeats a sweep without ``--bootstrap``. Inside every task BLAS/OpenMP pools are pinned
 to one thread. So ``sweep.csv`` is byte-identical with one process, many, or a Dask
 cluster (with one thread per Dask worker process, ``dask worker --nthreads 1``).
 
@@ -105,8 +107,6 @@ N_RESTARTS = 3
 #: Largest number of states and code dimension a sweep accepts.
 MAX_STATES = 64
 MAX_DIMS = 8
-#: Network surrogates per network task (the comparison's references need >= 20).
-N_SURROGATES = 20
 
 #: Columns of sweep.csv (network columns are empty without --rules).
 NETWORK_COLUMNS = ["fit_loss", "tau_s", "occupancy_tvd", "occupancy_tvd_ref95", "rate_r2",
@@ -240,14 +240,24 @@ class SweepTask:
 
     @property
     def key(self) -> str:
-        """Canonical text of the task's parameters (seeds its random streams)."""
-        return (f"input={self.input};states={self.n_states};dims={_txt(self.dims)};"
-                f"rule={_txt(self.rule)};replicate={_txt(self.replicate)}")
+        """Canonical text of the task's parameters (seeds its random streams).
+
+        Absent parameters and replicate 0 are left out, so adding ``--dims``,
+        ``--rules`` or ``--bootstrap`` to a sweep does not change the random numbers of
+        the parts that do not depend on them (replicate 0 is the data as recorded).
+        """
+        text = f"{self.group_key};states={self.n_states}"
+        if self.dims is not None:
+            text += f";dims={self.dims}"
+        if self.rule is not None:
+            text += f";rule={self.rule}"
+        return text
 
     @property
     def group_key(self) -> str:
         """Text of (input, replicate): the data every task of the group sees."""
-        return f"input={self.input};replicate={_txt(self.replicate)}"
+        text = f"input={self.input}"
+        return text + (f";replicate={self.replicate}" if self.replicate else "")
 
     @property
     def sort_key(self) -> tuple:
@@ -266,10 +276,6 @@ class SweepTask:
         if self.replicate is not None:
             name += f"_b{self.replicate}"
         return name + ".json"
-
-
-def _txt(v) -> str:
-    return "-" if v is None else str(v)
 
 
 def plan_tasks(inputs, states, *, dims=None, rules=None, bootstrap: int = 0) -> tuple:
@@ -615,7 +621,7 @@ def _state_part(task, binned, orig, latent_dims, seed, settings):
     if task.dims is not None:
         codes = assign_vertex_codes(
             np.asarray(sf.model.rates_), latent=sf.latent, n_dims=task.dims,
-            rng=np.random.default_rng(key_stream(seed, "codes;" + task.key)))
+            rng=np.random.default_rng(key_stream(seed, f"codes;{state_key};dims={task.dims}")))
         sf = dataclasses.replace(sf, codes=codes)
     seqs = analysed.sequences(dtype=np.float64)
     loglik = float(sf.model.score(seqs))
@@ -631,25 +637,39 @@ def _state_part(task, binned, orig, latent_dims, seed, settings):
     return analysed, sf, row, detail
 
 
-def _network_part(task, binned, recording, sf, seed, settings):
-    """Network fit on a random half of the trials; comparison on the other half."""
+def _network_part(task, binned, original, orig, recording, sf, seed, settings):
+    """Network fit on training trials; comparison with the held-out trials.
+
+    As the ``run`` command's model stage (same [network] and [compare] settings, the
+    trial split stratified by condition), except that the comparison uses the data's
+    state model only (no refit of the states on every surrogate, no null surrogates):
+    those multiply the cost and are for the ``run`` of a chosen configuration.
+    """
     from attractorfit.compare import compare
     from attractorfit.fit import fit_network
+    from attractorfit.pipeline import _condition_column, split_trials
     from attractorfit.surrogates import network_surrogates
 
     if task.n_states < 2:
         return {}, {"network": "not fitted: a network needs at least 2 states"}
-    net_seed, sur_seed, cmp_seed, split_seed = key_stream(seed, "network;" + task.key).spawn(4)
-    n = binned.n_trials
-    perm = np.random.default_rng(split_seed).permutation(n)
-    train = np.sort(perm[: (n + 1) // 2])
-    test = np.sort(perm[(n + 1) // 2:])
-    net = fit_network(binned, sf, rule=task.rule, recording=recording, train_trials=train,
-                      rng=np.random.default_rng(net_seed))
-    surrogates = network_surrogates(net, settings["n_surrogates"],
+    nw, cp = settings["network"], settings["compare"]
+    split_seed, fit_seed, sur_seed, cmp_seed = key_stream(seed, "network;" + task.key).spawn(4)
+    cond = _condition_column(binned, {"analysis": settings["analysis"]})
+    # split the original trials, so copies of one trial never sit on both sides
+    train_o, held_o = split_trials(original, cond, cp["held_out_fraction"],
+                                   np.random.default_rng(split_seed))
+    train = np.flatnonzero(np.isin(orig, train_o))
+    held = np.flatnonzero(np.isin(orig, held_o))
+    net = fit_network(binned, sf, rule=task.rule, hypercube=nw["hypercube"],
+                      extra_neurons=nw["extra_neurons"],
+                      tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
+                      recording=recording, condition=cond if cond else False,
+                      train_trials=train, rng=np.random.default_rng(fit_seed))
+    surrogates = network_surrogates(net, cp["n_surrogates"],
                                     rng=np.random.default_rng(sur_seed))
-    cmp = compare(binned, surrogates, sf, recording=recording, trials=test,
-                  rng=np.random.default_rng(cmp_seed))
+    cmp = compare(binned, surrogates, sf, recording=recording,
+                  trials=held if held.size else None, refit=False, condition=cond,
+                  n_boot=cp["n_boot"], rng=np.random.default_rng(cmp_seed))
     block = cmp.summary_block()
     row = {"fit_loss": float(net.loss), "tau_s": float(net.tau_s),
            "occupancy_tvd": block.get("occupancy_tvd"),
@@ -670,8 +690,8 @@ def _task_worker(item, data):
             analysed, sf, row, detail = _state_part(task, b, orig, group["latent_dims"],
                                                     seed, settings)
             if task.rule is not None:
-                net_row, net_detail = _network_part(task, analysed, recording, sf, seed,
-                                                    settings)
+                net_row, net_detail = _network_part(task, analysed, binned, orig, recording,
+                                                    sf, seed, settings)
                 row.update(net_row)
                 detail.update(net_detail)
             out = {"row": row, "detail": detail, "error": None}
@@ -750,7 +770,10 @@ def _settings(cfg: dict) -> dict:
     return {"format": TASK_FORMAT, "analysis": dict(cfg["analysis"]),
             "posterior_threshold": st["posterior_threshold"],
             "min_segment_s": st["min_segment_s"], "sticky": DEFAULT_STICKY,
-            "n_restarts": N_RESTARTS, "n_folds": N_FOLDS, "n_surrogates": N_SURROGATES}
+            "n_restarts": N_RESTARTS, "n_folds": N_FOLDS,
+            "network": {k: v for k, v in cfg["network"].items() if k != "rule"},
+            "compare": {k: cfg["compare"][k]
+                        for k in ("n_surrogates", "held_out_fraction", "n_boot")}}
 
 
 def _params(task, input_hash, seed, settings_hash) -> dict:
