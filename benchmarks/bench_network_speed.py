@@ -98,6 +98,8 @@ print(f"{before:.0f} {peak:.0f} {el:.2f} {spikes}")
 
 
 def main():
+    print(f"machine load average (1 min) at start: {os.getloadavg()[0]:.1f} on "
+          f"{os.cpu_count()} cores (other jobs slow every figure below)")
     print("== one core (NUMBA_NUM_THREADS=1), dt = 1e-4 s, noise 0.5 ==")
     for n, k, dur in ((2000, 8, 2.0), (1000, 16, 2.0)):
         net = make_network(n, k)
@@ -127,6 +129,7 @@ def main():
         el, steps, _ = time_compiled(net, 0.1, repeats=2)
         print(f"N={n:7d}: {el / steps * 1e6:8.1f} us per step, "
               f"{el / steps / n * 1e9:5.2f} ns per neuron-step")
+    print(f"machine load average (1 min) at end: {os.getloadavg()[0]:.1f}")
 
 
 if __name__ == "__main__":

@@ -95,36 +95,39 @@ def readout_noise_ratio(net, positions, *, dt=1e-4, scale=1.0):
 
 
 class _RateTable:
-    """Tabulated transfer function (rate and slope) per group of identical neurons.
+    """Tabulated transfer function per group of neurons with identical parameters.
 
-    Linear interpolation on a fine grid: used for flows from many starting points; fixed
-    points are then polished with the exact transfer function.
+    A uniform grid of inputs and linear interpolation (vectorised over neurons and
+    starting points); used for flows from many starting points, after which fixed points
+    are polished with the exact transfer function. Falls back to exact evaluation when
+    the tables would be too large.
     """
 
-    def __init__(self, net, dt, lo, hi, n_grid=4001, max_groups=64):
+    def __init__(self, net, dt, lo, hi, n_grid=2001, max_cells=2e7):
         params = np.column_stack([net.noise, net.threshold, net.reset])
         uniq, inv = np.unique(params, axis=0, return_inverse=True)
         self.net, self.dt = net, dt
-        self.exact = len(uniq) > max_groups
+        self.exact = len(uniq) * n_grid > max_cells
         if self.exact:
             return
-        self.groups = [np.flatnonzero(inv.ravel() == g) for g in range(len(uniq))]
-        self.grid = np.linspace(lo, hi, n_grid)
-        self.rate, self.slope = [], []
-        for noise, thr, reset in uniq:
-            kw = dict(tau_m=net.tau_m, threshold=thr, reset=reset,
-                      refractory=net.refractory, dt=dt)
-            self.rate.append(np.asarray(transfer_rate(self.grid, noise, **kw), float))
-            self.slope.append(np.asarray(transfer_slope(self.grid, noise, **kw), float))
+        self.group = inv.ravel()
+        self.lo, self.step = lo, (hi - lo) / (n_grid - 1)
+        grid = np.linspace(lo, hi, n_grid)
+        self.table = np.empty((len(uniq), n_grid))
+        for g, (noise, thr, reset) in enumerate(uniq):
+            self.table[g] = transfer_rate(grid, noise, tau_m=net.tau_m, threshold=thr,
+                                          reset=reset, refractory=net.refractory, dt=dt)
 
     def rates(self, inputs):
         if self.exact:
             return np.asarray(transfer_rate(inputs, self.net.noise, dt=self.dt,
                                             **self.net._neuron_kw()), float)
-        out = np.empty_like(inputs)
-        for idx, tab in zip(self.groups, self.rate):
-            out[..., idx] = np.interp(inputs[..., idx], self.grid, tab)
-        return out
+        pos = np.clip((inputs - self.lo) / self.step, 0.0, self.table.shape[1] - 1.000001)
+        i0 = pos.astype(np.int64)
+        w = pos - i0
+        idx = self.group * self.table.shape[1] + i0          # row of each neuron's group
+        flat = self.table.ravel()
+        return flat[idx] * (1.0 - w) + flat[idx + 1] * w
 
 
 def rate_flow(net, starts, *, dt=1e-4, duration=40.0, step=0.1, tol=1e-7):
