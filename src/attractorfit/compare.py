@@ -343,6 +343,19 @@ class _PooledValues:
                             for v in vals], dtype=np.int64).reshape(len(vals),
                                                                      self.grid.size)
         self.n = np.array([v.size for v in vals], dtype=np.int64)
+        self._target = {}
+
+    def _prepare(self, target):
+        """Per-target quantities that do not depend on the weights (cached)."""
+        hit = self._target.get(id(target))
+        if hit is not None and hit[0] is target:
+            return hit[1]
+        t = np.sort(np.asarray(target, dtype=float)[np.isfinite(target)])
+        prep = (t.size, np.searchsorted(t, self.grid, side="right") / max(t.size, 1),
+                np.searchsorted(self.grid, t, side="right") - 1,
+                np.searchsorted(t, t, side="right") / max(t.size, 1))
+        self._target[id(target)] = (target, prep)
+        return prep
 
     def arrays(self, w):
         wi = np.asarray(w, dtype=np.int64)
@@ -350,16 +363,13 @@ class _PooledValues:
 
     def ks(self, w, target) -> float:
         """Kolmogorov-Smirnov statistic of ``target`` against the weighted pool."""
-        t = np.sort(np.asarray(target, dtype=float)[np.isfinite(target)])
+        n_t, f_t_grid, j, f_t = self._prepare(target)    # j: last grid point <= t
         w = np.asarray(w, dtype=np.int64)
         total = int(w @ self.n)
-        if t.size == 0 or total == 0:
+        if n_t == 0 or total == 0:
             return float("nan")
         f_pool = (w @ self.le) / total                               # at grid points
-        f_t_grid = np.searchsorted(t, self.grid, side="right") / t.size
-        j = np.searchsorted(self.grid, t, side="right") - 1          # last grid <= t
         f_pool_t = np.where(j >= 0, f_pool[np.clip(j, 0, None)], 0.0)
-        f_t = np.searchsorted(t, t, side="right") / t.size
         return float(max(np.max(np.abs(f_t_grid - f_pool)) if self.grid.size else 0.0,
                          np.max(np.abs(f_t - f_pool_t))))
 
