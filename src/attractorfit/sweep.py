@@ -104,6 +104,8 @@ TASK_FORMAT = 1
 N_FOLDS = 5
 #: EM restarts of every state fit.
 N_RESTARTS = 3
+#: Seconds to wait for a Dask scheduler given by address.
+CONNECT_TIMEOUT_S = 20
 #: Largest number of states and code dimension a sweep accepts.
 MAX_STATES = 64
 MAX_DIMS = 8
@@ -443,7 +445,7 @@ def parallel_runner(*, jobs: int = 1, scheduler: str | None = None,
             client = distributed.Client(cluster)
         else:
             try:
-                client = distributed.Client(scheduler, timeout="20s")
+                client = distributed.Client(scheduler, timeout=f"{CONNECT_TIMEOUT_S}s")
             except (OSError, TimeoutError) as exc:
                 raise InputError(f"--scheduler {scheduler}: cannot connect ({exc})") from None
         yield _DaskRunner(client)
