@@ -401,3 +401,26 @@ def test_command_line_options(inputs, tmp_path):
     with pytest.raises(SystemExit):  # argparse: not allowed together
         parser.parse_args(["sweep", inputs[0], "--states", "1:2", "--out", "o", "--jobs",
                            "2", "--local-cluster", "2"])
+
+
+def test_rules_add_network_fit_and_comparison(inputs, tmp_path):
+    """--rules: the network fit on training trials and its comparison with held-out
+    trials fill the network columns; one state gets no network (and no error)."""
+    from attractorfit.config import resolve_config
+
+    cfg = resolve_config({"compare": {"n_surrogates": 2, "n_boot": 10}})
+    res = run_sweep(inputs[:1], states="1:2", rules=["pseudoinverse"], out=tmp_path / "net",
+                    seed=3, config=cfg)
+    one, two = res.rows
+    assert one["error"] is None and one["fit_loss"] is None and one["occupancy_tvd"] is None
+    assert two["error"] is None
+    for col in ("fit_loss", "tau_s", "occupancy_tvd", "occupancy_tvd_ref95", "rate_r2_ref05"):
+        assert isinstance(two[col], float), col
+    assert 0.0 <= two["occupancy_tvd"] <= 1.0  # a total variation distance
+    assert 0.01 <= two["tau_s"] <= 0.3  # inside the searched range (config defaults)
+    doc = json.loads((tmp_path / "net" / "tasks" / "rec0.npz_s2_pseudoinverse.json")
+                     .read_text())
+    assert doc["comparison"]["occupancy_tvd"] == two["occupancy_tvd"]
+    assert doc["model"]["decoder_rule"] == "pseudoinverse"
+    assert "not fitted" in json.loads((tmp_path / "net" / "tasks" /
+                                       "rec0.npz_s1_pseudoinverse.json").read_text())["network"]
