@@ -770,6 +770,9 @@ def _judge(name, value, reference, boots):
         text = (f"{what}: {name} = {value:.3g} {rule if consistent else 'vs'} {ref:.3g}, the "
                 f"{pct} percentile between model surrogates of the data's size "
                 f"(B = {ref_ok.size}); {verdict} (p = {p:.3g}).")
+    if name == "isi_cv_ks":
+        text += (" A multi-unit is not a single cell: ISI statistics of multi-units are "
+                 "compared with caution.")
     return MetricResult(name=name, kind=_kind(name), value=float(value),
                         reference=np.asarray(reference, dtype=float), ref=ref,
                         ci=np.asarray(ci, dtype=float), p_value=p, consistent=consistent,
