@@ -67,6 +67,10 @@ def register(sub) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress notes")
     p.set_defaults(func=_demo)
 
+    from attractorfit.sweep import add_sweep_command
+
+    add_sweep_command(sub)
+
 
 def _add_load_options(p) -> None:
     p.add_argument("path", help="recording: an NWB, NIX, CSV/TSV or NPZ file, a sorter "

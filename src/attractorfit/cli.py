@@ -34,8 +34,18 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _terminate(signum, frame):  # pragma: no cover - exercised in a subprocess test
+    raise KeyboardInterrupt
+
+
 def main(argv=None) -> int:
     """Run the command line; return the exit status."""
+    import signal
+
+    try:
+        signal.signal(signal.SIGTERM, _terminate)  # SIGTERM unwinds like Ctrl-C
+    except ValueError:  # not the main thread (e.g. called from a test runner thread)
+        pass
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
