@@ -57,7 +57,7 @@ def run(n, loads, **kw):
 
 def main():
     t_start = time.perf_counter()
-    loads = [0.1, 0.2, 0.3, 0.35, 0.4, 0.45, 0.5, 0.6]
+    loads = [0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8]
     print("== rate picture, binary patterns, N = 100 ==")
     run(100, loads, rule="hebbian", n_repeats=3)
     run(100, loads, rule="pseudoinverse", n_repeats=3)
@@ -66,7 +66,7 @@ def main():
     run(60, [0.1, 0.2, 0.3, 0.4, 0.5], rule="pseudoinverse", rng=1, n_repeats=3)
     run(60, [0.1, 0.2, 0.3, 0.4, 0.5], rule="optimized", rng=1)
     print("\n== spiking network, binary patterns, N = 200, 0.4 s per start ==")
-    run(200, [0.1, 0.2, 0.3, 0.35, 0.4, 0.5], rule="pseudoinverse", method="spiking",
+    run(200, [0.1, 0.2, 0.3, 0.35, 0.4, 0.5, 0.6], rule="pseudoinverse", method="spiking",
         n_starts=1, duration=0.4)
     run(200, [0.1, 0.2], rule="hebbian", method="spiking", n_starts=1, duration=0.4)
     run(60, [0.2, 0.3, 0.4], rule="optimized", method="spiking", n_starts=1,

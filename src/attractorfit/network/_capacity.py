@@ -236,7 +236,7 @@ class CapacityResult:
         pattern than to any other and has overlap >= ``threshold``.
     fraction_held : ndarray (L,)
         The same as ``fraction_recalled`` for starts at the vertices themselves (rate
-        picture: nudged by 0.05 a, s.d. per coordinate): does each pattern hold?
+        picture: nudged by about 0.01 a in a random direction): does each pattern hold?
     residual : ndarray (L,)
         Relative constraint residual of the decoder.
     median_margin : ndarray (L,)
@@ -462,7 +462,7 @@ def _retrieve(net, pats, res, acc, rng, *, method, corruption, n_starts, thresho
         owner.append(np.full(n_starts, m))
     starts, owner = np.vstack(starts), np.concatenate(owner)
     if method == "rate":
-        nudged = codes + rng.normal(0.0, 0.05, size=codes.shape)
+        nudged = codes + rng.normal(0.0, 0.01 / np.sqrt(codes.shape[1]), size=codes.shape)
         ends = rate_flow(net, np.vstack([starts, nudged]), dt=dt)
         end_rates = np.asarray(net.rates_at(ends, dt=dt), dtype=float)
     else:

@@ -143,7 +143,7 @@ def siegert_rate(mu, sigma, *, tau_m=0.02, threshold=1.0, reset=0.0, refractory=
     Examples
     --------
     >>> round(float(siegert_rate(0.6, 0.5)), 1)
-    12.4
+    12.6
     """
     mu, sigma, tau_m, thr, reset, ref = _broadcast(mu, sigma, tau_m, threshold, reset,
                                                    refractory)
