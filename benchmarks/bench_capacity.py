@@ -69,8 +69,8 @@ def main():
     run(200, [0.1, 0.2, 0.3, 0.35, 0.4, 0.5, 0.6], rule="pseudoinverse", method="spiking",
         n_starts=1, duration=0.4)
     run(200, [0.1, 0.2], rule="hebbian", method="spiking", n_starts=1, duration=0.4)
-    print("\n== spiking network, binary patterns, N = 60 (same networks as the N = 60 rate "
-          "rows) ==")
+    print("\n== spiking network, binary patterns, N = 60 (pseudo-inverse and optimized on "
+          "the same networks) ==")
     run(60, [0.2, 0.3, 0.4], rule="pseudoinverse", method="spiking", n_starts=1,
         duration=0.4, rng=1)
     run(60, [0.2, 0.3, 0.4], rule="optimized", method="spiking", n_starts=1,
