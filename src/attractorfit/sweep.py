@@ -441,7 +441,7 @@ def parallel_runner(*, jobs: int = 1, scheduler: str | None = None,
         if local_cluster is not None:
             cluster = distributed.LocalCluster(
                 n_workers=local_cluster, threads_per_worker=1, processes=True,
-                host="127.0.0.1", dashboard_address=None, silence_logs=logging.ERROR)
+                host="127.0.0.1", dashboard_address=None, silence_logs=logging.CRITICAL)
             client = distributed.Client(cluster)
         else:
             try:
