@@ -2,7 +2,7 @@
 
 Workload (fixed here; change with the options): ``--inputs`` synthetic recordings
 (switching among 4 states, gamma spiking) of ``--units`` units and ``--trials`` trials
-of 3 s, written as NPZ; ``--states 1:8`` and ``--bootstrap`` replicates, so
+of 3 s, written as NWB files; ``--states 1:8`` and ``--bootstrap`` replicates, so
 inputs x 8 x (bootstrap + 1) tasks, each a Poisson HMM state analysis with 5-fold
 held-out likelihood. Every configuration writes into its own fresh folder; the
 script prints wall time, CPU time, speed-up over one process (the faster of two
@@ -24,6 +24,7 @@ Run: ``python benchmarks/bench_sweep.py [--units 60 --trials 60 --inputs 2 --sta
 from __future__ import annotations
 
 import argparse
+import hashlib
 import os
 import resource
 import shutil
@@ -32,16 +33,9 @@ import time
 
 import numpy as np
 
+from attractorfit.io import write_nwb
 from attractorfit.sweep import _shutdown_loky, run_sweep
 from attractorfit.synthetic import switching_recording
-
-
-def write_npz(rec, path):
-    times = np.concatenate(rec.spike_times)
-    units = np.concatenate([np.full(len(t), i) for i, t in enumerate(rec.spike_times)])
-    order = np.argsort(times, kind="stable")
-    np.savez(path, spike_times=times[order], spike_units=units[order],
-             trial_start=rec.trials["start"], trial_stop=rec.trials["stop"])
 
 
 def children_cpu() -> float:
@@ -50,15 +44,17 @@ def children_cpu() -> float:
     return r.ru_utime + r.ru_stime
 
 
-def tree(folder):
-    out = {}
-    for root, _, files in os.walk(folder):
-        for f in files:
-            if not f.startswith("."):
-                p = os.path.join(root, f)
-                with open(p, "rb") as fh:
-                    out[os.path.relpath(p, folder)] = fh.read()
-    return out
+def digest(folder) -> tuple:
+    """(number of files, SHA-256 over every output file's relative path and bytes)."""
+    h = hashlib.sha256()
+    names = sorted(os.path.relpath(os.path.join(root, f), folder)
+                   for root, _, files in os.walk(folder) for f in files
+                   if not f.startswith("."))
+    for name in names:
+        h.update(name.encode() + b"\0")
+        with open(os.path.join(folder, name), "rb") as fh:
+            h.update(fh.read())
+    return len(names), h.hexdigest()
 
 
 def main():
@@ -76,8 +72,8 @@ def main():
         for k in range(args.inputs):
             rec, _ = switching_recording(n_units=args.units, n_states=4, n_trials=args.trials,
                                          trial_duration=3.0, rng=k)
-            p = os.path.join(work, "in", f"session{k}.npz")
-            write_npz(rec, p)
+            p = os.path.join(work, "in", f"session{k}.nwb")
+            write_nwb(rec, p)
             paths.append(p)
         print(f"cores {os.cpu_count()}, load average before {os.getloadavg()}")
         print(f"workload: {args.inputs} inputs x {args.units} units x {args.trials} trials "
@@ -95,7 +91,9 @@ def main():
             _shutdown_loky()
             time.sleep(1.0)  # let the workers exit and be reaped
             kids = children_cpu() - k0
-            results.append((label, wall, cpu, kids, tree(out), len(res.tasks),
+            with open(os.path.join(out, "sweep.csv"), "rb") as fh:
+                csv_hash = hashlib.sha256(fh.read()).hexdigest()
+            results.append((label, wall, cpu, kids, (csv_hash, digest(out)), len(res.tasks),
                             len(res.failed)))
         ref = results[0]
         serial_wall = min(r[1] for r in results if r[0].startswith("1 process"))
@@ -104,12 +102,13 @@ def main():
               f"{'cpu workers':>12}{'cpu total':>10}{'speed-up':>9}{'cpu/serial':>11}"
               "  identical to 1 process")
         for label, wall, cpu, kids, files, n, failed in results:
-            same = files == ref[4]
-            csv_same = files["sweep.csv"] == ref[4]["sweep.csv"]
+            same = files[1] == ref[4][1]
+            csv_same = files[0] == ref[4][0]
             print(f"{label:<31}{n:>6}{wall:>8.1f}{cpu:>9.1f}{kids:>12.1f}{cpu + kids:>10.1f}"
                   f"{serial_wall / wall:>9.2f}{(cpu + kids) / serial_cpu:>11.2f}  "
-                  f"sweep.csv {'yes' if csv_same else 'NO'}, all {len(files)} files "
+                  f"sweep.csv {'yes' if csv_same else 'NO'}, all {files[1][0]} files "
                   f"{'yes' if same else 'NO'}" + (f", {failed} failed" if failed else ""))
+        print(f"sweep.csv SHA-256 (1 process): {ref[4][0]}")
         print(f"\nload average after {os.getloadavg()}")
     finally:
         shutil.rmtree(work, ignore_errors=True)

@@ -701,7 +701,7 @@ def _task_worker(item, data):
             out = {"row": {}, "detail": {}, "error": str(exc)}
         except Exception as exc:  # recorded, not fatal (see module docstring)
             out = {"row": {}, "detail": {}, "error": _one_line(exc)}
-    out["warnings"] = _warning_texts(caught)
+    out["warnings"] = sorted(set(_warning_texts(caught)) | set(group["warnings"]))
     return out
 
 
@@ -750,7 +750,7 @@ def _check_out(out, paths) -> str:
     for p in paths:
         p = os.path.abspath(os.fspath(p))
         folder = p if os.path.isdir(p) else os.path.dirname(p)
-        if out == folder or out.startswith(folder + os.sep) and os.path.isdir(p):
+        if out == folder or (os.path.isdir(p) and out.startswith(folder + os.sep)):
             raise InputError(f"--out {out}: that is the folder of input {_input_name(p)!r}; "
                              "choose another folder for the results (inputs are never "
                              "written beside)")
@@ -799,21 +799,24 @@ def _load_inputs(paths, cfg, *, need_recording):
     from attractorfit.io import load
     from attractorfit.pipeline import bin_for_analysis, input_record
 
-    data, hashes, errors = {}, {}, {}
+    data, hashes, errors, notes = {}, {}, {}, {}
     for p in paths:
         name = _input_name(p)
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
+        with _task_context() as caught:
+            try:
                 rec = load(p)
                 binned = bin_for_analysis(rec, cfg)
-        except Exception as exc:  # recorded per task, not fatal
-            errors[name] = _one_line(exc)
+            except Exception as exc:  # recorded per task, not fatal
+                errors[name] = _one_line(exc)
+                rec = None
+        notes[name] = _warning_texts(caught)
+        if rec is None:
             hashes[name] = None
             continue
+        notes[name] = sorted(set(notes[name]) | {" ".join(w.split()) for w in rec.warnings})
         hashes[name] = input_record(rec)["sha256"]
         data[name] = (binned, rec if need_recording else None)
-    return data, hashes, errors
+    return data, hashes, errors, notes
 
 
 def _note(message, stream):
@@ -907,7 +910,8 @@ def run_sweep(paths, *, states, out, dims=None, rules=None, bootstrap: int = 0,
         _note(f"note: left out {len(left_out)} (states, dims) combination(s) where "
               "2^dims < states", notes)
 
-    data, hashes, input_errors = _load_inputs(paths, cfg, need_recording=bool(rules))
+    data, hashes, input_errors, input_notes = _load_inputs(paths, cfg,
+                                                           need_recording=bool(rules))
     task_dir = os.path.join(out, "tasks")
     docs, todo = {}, []
     for t in tasks:
@@ -934,7 +938,8 @@ def run_sweep(paths, *, states, out, dims=None, rules=None, bootstrap: int = 0,
 
     def finish(t, res):
         doc = {"key": t.key, "task": _params(t, hashes[t.input], seed, settings_hash),
-               "row": res["row"], "error": res["error"], "warnings": res["warnings"],
+               "row": res["row"], "error": res["error"],
+               "warnings": sorted(set(res["warnings"]) | set(input_notes[t.input])),
                **res.get("detail", {})}
         text = dumps_json(doc)
         atomic_write(os.path.join(task_dir, t.file_name), text)
