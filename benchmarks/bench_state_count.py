@@ -75,7 +75,12 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--reps", type=int, default=5, help="datasets per scenario")
     ap.add_argument("--quick", action="store_true", help="first 3 scenarios, 2 reps")
+    ap.add_argument("--timing", action="store_true", help="only the timing of the "
+                    "bootstrap-sized case (60 units x 100 trials x 150 bins)")
     args = ap.parse_args()
+    if args.timing:
+        timing()
+        return
     scen = dict(list(SCENARIOS.items())[:3]) if args.quick else SCENARIOS
     reps = 2 if args.quick else args.reps
     correct = defaultdict(dict)
@@ -133,6 +138,29 @@ def main():
         c0 = choose_n_states(seqs, candidates=CANDIDATES, rule="bic", sticky=0.0,
                              n_folds=None, rng=rep)
         print(f"  rep {rep}: sticky=0.2+bic chose {c.chosen}, plain bic chose {c0.chosen}")
+
+    timing()
+
+
+def timing(repeats=3):
+    """choose_n_states on 60 units x 100 trials x 150 bins (20 ms), candidates 1-8."""
+    rec, _ = switching_recording(n_units=60, n_states=4, n_trials=100, gamma_order=2.0,
+                                 rng=11)
+    seqs = bin_spikes(rec, bin_size=0.02).sequences()
+    choose_n_states(seqs[:5], candidates=[1, 2], fast=True, rng=0)   # load compiled code
+    print()
+    print("timing, 60 units x 100 trials x 150 bins, candidates 1-8 (best of "
+          f"{repeats}; wall clock on a shared 2-core machine):")
+    for label, kw in (("fast=True (default rule)", dict(fast=True)),
+                      ("default, n_folds=None", dict(n_folds=None)),
+                      ("default with 5 folds", dict()),
+                      ("fast=True, n_jobs=2", dict(fast=True, n_jobs=2))):
+        best, chosen = np.inf, None
+        for r in range(repeats):
+            t = time.perf_counter()
+            chosen = choose_n_states(seqs, rng=r, **kw).chosen
+            best = min(best, time.perf_counter() - t)
+        print(f"  {label:<28s} {best:6.2f} s   (chose {chosen}, truth 4)")
 
 
 if __name__ == "__main__":

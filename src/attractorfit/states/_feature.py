@@ -33,7 +33,7 @@ from attractorfit._validation import check_int, check_positive, check_rng
 from attractorfit.errors import InputError
 from attractorfit.states._forward_backward import forward_backward
 from attractorfit.states._hmm import (RATE_FLOOR, PoissonHMM, _CountData, _CountHMMBase,
-                                      _log_emissions, _smoothed, check_count_sequences,
+                                      _log_emissions, check_count_sequences,
                                       single_thread)
 
 __all__ = ["BinaryFeatureHMM", "CubeComparison", "compare_cube_vs_free", "vertex_codes"]
@@ -146,22 +146,21 @@ class BinaryFeatureHMM(_CountHMMBase):
         self
         """
         with single_thread():
-            return self._fit(X)
+            return self._fit(_CountData(check_count_sequences("X", X)))
 
-    def _fit(self, X):
+    def _fit(self, data):
         K = check_int("n_features", self.n_features, low=1, high=MAX_FEATURES)
         check_int("n_restarts", self.n_restarts, low=1)
         check_int("max_iter", self.max_iter, low=1)
         check_int("newton_steps", self.newton_steps, low=1)
         check_positive("tol", self.tol)
-        data = _CountData(check_count_sequences("X", X))
         if 2 ** K > data.n_bins:
             raise InputError(f"n_features: {K} features ({2 ** K} joint states) need at least "
                              f"{2 ** K} bins of data, got {data.n_bins}")
         rng = check_rng(self.rng)
         codes = vertex_codes(K)
         seeds = rng.integers(0, 2**31 - 1, size=int(self.n_restarts))
-        smooth = _smoothed(data)
+        smooth = data.smoothed
         best, logliks = None, []
         for r in range(int(self.n_restarts)):
             kind = "kmeans" if r % 2 == 0 else "random"
@@ -327,8 +326,7 @@ def _initial_cube(data, smooth, codes, kind, seed):
         warnings.simplefilter("ignore")
         labels = KMeans(n_clusters=V, n_init=1, random_state=seed).fit(smooth).labels_
     counts = np.bincount(labels, minlength=V).astype(float)
-    sums = np.zeros((V, data.n_units))
-    np.add.at(sums, labels, data.X)
+    sums = np.eye(V)[labels].T @ data.X
     rates = np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None], mean)
     L = np.log(np.maximum(rates, 0.01 * mean[None, :]))
     perm, theta = _assign_to_vertices(L, np.maximum(counts, 1.0), codes, r)
@@ -337,9 +335,8 @@ def _initial_cube(data, smooth, codes, kind, seed):
     p = np.ones((K, 2))
     A = np.ones((K, 2, 2))
     for k in range(K):
-        np.add.at(p[k], bits[data.offsets[:-1], k], 1.0)
-        for seq in data.split(bits[:, k]):
-            np.add.at(A[k], (seq[:-1], seq[1:]), 1.0)
+        p[k] += np.bincount(bits[data.offsets[:-1], k], minlength=2)
+        A[k] += data.transition_pairs(bits[:, k], 2)
     return theta, p / p.sum(axis=1, keepdims=True), A / A.sum(axis=2, keepdims=True)
 
 
@@ -429,6 +426,7 @@ def compare_cube_vs_free(sequences, n_features, n_states=None, *, n_folds=5, sti
     seqs = check_count_sequences("sequences", sequences)
     rng = check_rng(rng)
     folds = _trial_folds(len(seqs), n_folds, rng)
+    data = _CountData(seqs)
     s_cube, s_free, s_all_c, s_all_f = np.random.SeedSequence(
         int(rng.integers(2**63 - 1))).spawn(4)
 
@@ -440,12 +438,12 @@ def compare_cube_vs_free(sequences, n_features, n_states=None, *, n_folds=5, sti
         return PoissonHMM(S, sticky=sticky, n_restarts=n_restarts, max_iter=max_iter,
                           tol=tol, rng=np.random.default_rng(seed))
 
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), single_thread():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        ll_c = _heldout_per_trial(seqs, folds, make_cube, s_cube)
-        ll_f = _heldout_per_trial(seqs, folds, make_free, s_free)
-        cube = make_cube(s_all_c).fit(seqs)
-        free = make_free(s_all_f).fit(seqs)
+        ll_c = _heldout_per_trial(data, folds, make_cube, s_cube)
+        ll_f = _heldout_per_trial(data, folds, make_free, s_free)
+        cube = make_cube(s_all_c)._fit(data)
+        free = make_free(s_all_f)._fit(data)
     n_bins = sum(len(x) for x in seqs)
     diff = ll_c - ll_f
     se = float(np.sqrt(len(diff)) * diff.std(ddof=1)) if len(diff) > 1 else np.nan

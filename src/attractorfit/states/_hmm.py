@@ -127,6 +127,7 @@ class _CountData:
         self.n_bins = int(self.offsets[-1])
         self.n_units = int(self.X.shape[1])
         self._log_fact = None
+        self._smoothed = None
 
     @property
     def log_fact(self) -> np.ndarray:
@@ -140,6 +141,31 @@ class _CountData:
             else:  # pragma: no cover - absurd counts; fall back to direct evaluation
                 self._log_fact = gammaln(self.X + 1.0).sum(axis=1)
         return self._log_fact
+
+    @property
+    def smoothed(self) -> np.ndarray:
+        """Square-root counts smoothed within each sequence (computed once)."""
+        if self._smoothed is None:
+            self._smoothed = _smoothed(self)
+        return self._smoothed
+
+    def transition_pairs(self, labels, S) -> np.ndarray:
+        """Counts of consecutive label pairs within sequences (S x S)."""
+        within = np.ones(max(self.n_bins - 1, 0), dtype=bool)
+        within[self.offsets[1:-1] - 1] = False
+        idx = labels[:-1][within] * S + labels[1:][within]
+        return np.bincount(idx, minlength=S * S).reshape(S, S).astype(float)
+
+    def subset(self, idx) -> "_CountData":
+        """The sequences at indices ``idx``, reusing the cached per-bin arrays."""
+        idx = np.asarray(idx, dtype=np.int64)
+        new = _CountData([self.seqs[i] for i in idx])
+        rows = np.concatenate([np.arange(self.offsets[i], self.offsets[i + 1]) for i in idx])
+        if self._log_fact is not None:
+            new._log_fact = self._log_fact[rows]
+        if self._smoothed is not None:
+            new._smoothed = self._smoothed[rows]
+        return new
 
     def split(self, arr):
         return [arr[self.offsets[i]:self.offsets[i + 1]] for i in range(len(self.seqs))]
@@ -405,13 +431,12 @@ class PoissonHMM(_CountHMMBase):
         self
         """
         with single_thread():
-            return self._fit(check_count_sequences("X", X))
+            return self._fit(_CountData(check_count_sequences("X", X)))
 
-    def _fit(self, seqs):
-        data = _CountData(seqs)
+    def _fit(self, data):
         S = self._check_options(data)
         rng = check_rng(self.rng)
-        kappa = float(self.sticky) * max(data.n_bins - len(seqs), 0) / S
+        kappa = float(self.sticky) * max(data.n_bins - len(data.seqs), 0) / S
         given = None
         if self.init == "given":
             start, trans, rates = self._joint_params()
@@ -419,7 +444,6 @@ class PoissonHMM(_CountHMMBase):
                 raise InputError(f"init='given': rates_ has shape {rates.shape}, expected "
                                  f"({S}, {data.n_units})")
             given = (start.copy(), trans.copy(), np.maximum(rates, RATE_FLOOR))
-        smooth = None
         best = None
         objectives = []
         seeds = rng.integers(0, 2**31 - 1, size=int(self.n_restarts))
@@ -429,10 +453,8 @@ class PoissonHMM(_CountHMMBase):
             if r == 0 and given is not None:
                 params = given
             else:
-                if smooth is None:
-                    smooth = _smoothed(data)
                 kind = self.init if r == 0 else ("random" if r % 2 else "kmeans")
-                params = _initial_params(data, smooth, S, kind, int(seeds[r]))
+                params = _initial_params(data, data.smoothed, S, kind, int(seeds[r]))
             res = _em(data, *params, kappa=kappa, max_iter=screen, tol=tol)
             objectives.append(res["objective"][-1])
             if best is None or res["objective"][-1] > best["objective"][-1]:
@@ -485,16 +507,13 @@ def _smoothed(data: _CountData) -> np.ndarray:
 def _labels_to_params(data, labels, S):
     """Rates, start and transition probabilities from a hard labelling of the bins."""
     counts = np.bincount(labels, minlength=S).astype(float)
-    sums = np.zeros((S, data.n_units))
-    np.add.at(sums, labels, data.X)
+    sums = np.eye(S)[labels].T @ data.X
     mean = data.X.mean(axis=0)
     rates = np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None], mean[None, :])
     rates = np.maximum(rates, RATE_FLOOR)
-    trans = np.ones((S, S))
+    trans = 1.0 + data.transition_pairs(labels, S)
     first = labels[data.offsets[:-1]]
     start = np.bincount(first, minlength=S).astype(float) + 1.0
-    for seq in data.split(labels):
-        np.add.at(trans, (seq[:-1], seq[1:]), 1.0)
     return start / start.sum(), trans / trans.sum(axis=1, keepdims=True), rates
 
 
@@ -511,7 +530,7 @@ def _initial_params(data, smooth, S, kind, seed):
             sub = smooth[np.sort(r.choice(data.n_bins, size=_INIT_MAX_BINS, replace=False))]
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # duplicate points with tiny data
-            km = KMeans(n_clusters=S, n_init=_KMEANS_N_INIT, max_iter=50,
+            km = KMeans(n_clusters=S, n_init=_KMEANS_N_INIT, max_iter=20,
                         random_state=int(r.integers(2**31 - 1))).fit(sub)
         centres = km.cluster_centers_
     else:

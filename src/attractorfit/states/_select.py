@@ -38,24 +38,24 @@ def _trial_folds(n_trials: int, n_folds, rng) -> list:
     return [np.sort(perm[f::n_folds]) for f in range(n_folds)]
 
 
-def _heldout_per_trial(seqs, folds, make_model, seed) -> np.ndarray:
+def _heldout_per_trial(data, folds, make_model, seed) -> np.ndarray:
     """Held-out log-likelihood of every trial: fit on the other folds, score the trial.
 
     ``make_model(seed)`` returns an unfitted estimator; fold f uses the f-th child of
     ``seed`` (a SeedSequence), so the result does not depend on execution order.
     """
-    out = np.empty(len(seqs))
-    for f, (test, child) in enumerate(zip(folds, seed.spawn(len(folds)))):
-        out[test] = _fold_loglik(seqs, test, make_model, child)
+    out = np.empty(len(data.seqs))
+    for test, child in zip(folds, seed.spawn(len(folds))):
+        out[test] = _fold_loglik(data, test, make_model, child)
     return out
 
 
-def _fold_loglik(seqs, test, make_model, seed):
-    mask = np.ones(len(seqs), dtype=bool)
+def _fold_loglik(data, test, make_model, seed):
+    """Fit ``make_model(seed)`` on all sequences but ``test``; log-lik of each test one."""
+    mask = np.ones(len(data.seqs), dtype=bool)
     mask[test] = False
-    train = [x for x, m in zip(seqs, mask) if m]
-    model = make_model(seed).fit(train)
-    return model._sequence_logliks(_CountData([seqs[i] for i in test]))
+    model = make_model(seed)._fit(data.subset(np.flatnonzero(mask)))
+    return model._sequence_logliks(data.subset(test))
 
 
 def _loglik_and_entropy(model, data) -> tuple:
@@ -136,20 +136,20 @@ class StateCountChoice:
     models: dict = field(repr=False)
 
 
-def _full_task(seqs, S, seed, opts):
+def _full_task(data, S, seed, opts):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        model = PoissonHMM(S, rng=np.random.default_rng(seed), **opts).fit(seqs)
-    return (model, *_loglik_and_entropy(model, _CountData(seqs)))
+        model = PoissonHMM(S, rng=np.random.default_rng(seed), **opts)._fit(data)
+    return (model, *_loglik_and_entropy(model, data))
 
 
-def _fold_task(seqs, S, test, seed, opts):
+def _fold_task(data, S, test, seed, opts):
     def make(s):
         return PoissonHMM(S, rng=np.random.default_rng(s), **opts)
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        return _fold_loglik(seqs, test, make, seed)
+        return _fold_loglik(data, test, make, seed)
 
 
 def _one_se(per_trial: np.ndarray) -> tuple:
@@ -239,6 +239,8 @@ def choose_n_states(sequences, *, candidates=range(1, 9), rule="bic", n_folds=5,
     opts = dict(sticky=sticky, n_restarts=n_restarts, max_iter=max_iter, tol=tol)
     PoissonHMM(1, **opts)._check_options(_CountData(seqs[:1]))  # validate options early
     rng = check_rng(rng)
+    data = _CountData(seqs)
+    data.log_fact, data.smoothed  # computed once here, not in every thread
     folds = _trial_folds(len(seqs), n_folds, rng) if n_folds is not None else []
     root = np.random.SeedSequence(int(rng.integers(2**63 - 1)))
     cand_seeds = root.spawn(len(cands))
@@ -252,8 +254,8 @@ def choose_n_states(sequences, *, candidates=range(1, 9), rule="bic", n_folds=5,
     def run(task):
         kind, i, f, S, seed = task
         if kind == "full":
-            return _full_task(seqs, S, seed, opts)
-        return _fold_task(seqs, S, folds[f], seed, opts)
+            return _full_task(data, S, seed, opts)
+        return _fold_task(data, S, folds[f], seed, opts)
 
     with single_thread():
         if n_jobs == 1 or len(tasks) == 1:
