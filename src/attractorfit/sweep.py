@@ -350,7 +350,8 @@ class _JoblibRunner:
     def imap_unordered(self, func, items, data):
         from joblib import Parallel, delayed
 
-        par = Parallel(n_jobs=self.jobs, backend="loky", return_as="generator_unordered")
+        par = Parallel(n_jobs=self.jobs, backend="loky", return_as="generator_unordered",
+                       batch_size=1)
         yield from par(delayed(_indexed)(func, i, item, d)
                        for i, (item, d) in enumerate(zip(items, data)))
 
@@ -585,25 +586,31 @@ def _group_worker(item, data):
     return out
 
 
-def _heldout(seqs, orig, S, group_key, task_key, seed, settings):
-    """Held-out log-likelihood of every trial, k-fold over original trials."""
+def _heldout(seqs, orig, S, group_key, state_key, seed, settings):
+    """Held-out log-likelihood of every trial, k-fold over original trials.
+
+    Fold f's model is fitted on the other folds with the f-th child of the state
+    stream's held-out seed and scores each of its trials (public PoissonHMM API).
+    """
     from attractorfit.states import PoissonHMM
-    from attractorfit.states._select import _heldout_per_trial, _trial_folds
+    from attractorfit.states._select import _trial_folds
 
     uniq = np.unique(orig)
-    n_folds = min(settings["n_folds"], uniq.size)
     if uniq.size < 2:
         raise InputError(f"{uniq.size} distinct trial(s); held-out likelihood needs at "
                          "least 2")
     fold_rng = np.random.default_rng(key_stream(seed, "folds;" + group_key))
-    folds = [np.flatnonzero(np.isin(orig, uniq[f]))
-             for f in _trial_folds(uniq.size, n_folds, fold_rng)]
-
-    def make(ss):
-        return PoissonHMM(S, sticky=settings["sticky"], n_restarts=settings["n_restarts"],
-                          rng=np.random.default_rng(ss))
-
-    return _heldout_per_trial(seqs, folds, make, key_stream(seed, "heldout;" + task_key))
+    folds = _trial_folds(uniq.size, min(settings["n_folds"], uniq.size), fold_rng)
+    out = np.empty(len(seqs))
+    children = key_stream(seed, "heldout;" + state_key).spawn(len(folds))
+    for fold, child in zip(folds, children):
+        test = np.isin(orig, uniq[fold])
+        model = PoissonHMM(S, sticky=settings["sticky"], n_restarts=settings["n_restarts"],
+                           rng=np.random.default_rng(child))
+        model.fit([x for x, t in zip(seqs, test) if not t])
+        for i in np.flatnonzero(test):
+            out[i] = model.score(seqs[i])
+    return out
 
 
 def _state_part(task, binned, orig, latent_dims, seed, settings):
@@ -951,6 +958,9 @@ def run_sweep(paths, *, states, out, dims=None, rules=None, bootstrap: int = 0,
             finish(t, {"row": {}, "error": input_errors[t.input], "warnings": []})
         else:
             runnable.append(t)
+    # costliest first (more states, then networks), so workers finish together; the
+    # order changes nothing in the results
+    runnable.sort(key=lambda t: (-t.n_states, t.rule is None, t.sort_key))
     if runnable:
         with parallel_runner(jobs=jobs, scheduler=scheduler,
                              local_cluster=local_cluster) as runner, \
