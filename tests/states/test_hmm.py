@@ -185,9 +185,11 @@ def test_emission_matrix_equals_scipy_logpmf():
     rng = np.random.default_rng(10)
     rates = rng.gamma(2.0, 1.0, size=(3, 6))
     X = rng.poisson(2.0, size=(25, 6)).astype(float)
-    got = _log_emissions(_CountData([X]), rates)
     ref = np.stack([poisson.logpmf(X, r).sum(1) for r in rates], axis=1)
-    np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-10)
+    for data in (_CountData([X]), _CountData([X[:10].astype(np.uint8),
+                                              X[10:].astype(np.int64)])):
+        got = _log_emissions(data, rates)
+        np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-10)
 
 
 # ---------------------------------------------------------------- EM invariants
@@ -331,6 +333,11 @@ def test_input_errors():
         bad = X.copy()
         bad[1, 2] = -1
         PoissonHMM(2).fit([bad])
+    with pytest.raises(InputError, match=r"X\[1\]: element \(2, 0\) is -3; spike counts "
+                                         "must be >= 0"):
+        bad = np.ones((4, 3), dtype=np.int32)
+        bad[2, 0] = -3
+        PoissonHMM(2).fit([np.ones((4, 3), dtype=np.int64), bad])
     with pytest.raises(InputError, match=r"element \(0, 1\) is 0.5; spike counts must be "
                                          "whole numbers"):
         bad = X.copy()

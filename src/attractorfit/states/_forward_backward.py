@@ -23,7 +23,23 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["forward_backward", "forward_loglik", "viterbi"]
+__all__ = ["forward_backward", "forward_loglik", "viterbi", "row_log_factorial"]
+
+
+@njit(cache=True, nogil=True)
+def row_log_factorial(X, table):
+    """sum_i log(X[t, i]!) for every row t, looking up ``table[k] = log(k!)``.
+
+    ``X`` holds whole numbers 0 <= X < len(table) (float64, any layout).
+    """
+    T, N = X.shape
+    out = np.zeros(T)
+    for t in range(T):
+        acc = 0.0
+        for i in range(N):
+            acc += table[int(X[t, i])]
+        out[t] = acc
+    return out
 
 
 @njit(cache=True, nogil=True)

@@ -32,7 +32,8 @@ from sklearn.utils.validation import check_is_fitted
 from attractorfit._validation import (check_array, check_int, check_nonnegative,
                                       check_positive, check_rng)
 from attractorfit.errors import InputError
-from attractorfit.states._forward_backward import forward_backward, forward_loglik, viterbi
+from attractorfit.states._forward_backward import (forward_backward, forward_loglik,
+                                                   row_log_factorial, viterbi)
 
 __all__ = ["PoissonHMM", "check_count_sequences"]
 
@@ -54,14 +55,15 @@ _INIT_SMOOTH_BINS = 1.5
 
 
 def check_count_sequences(name: str, value, *, n_units: int | None = None) -> list:
-    """Validate spike-count sequences and return them as a list of float64 arrays.
+    """Validate spike-count sequences and return them as a list of 2-D arrays.
 
     ``value`` is one count matrix (T x N), a list/tuple of per-trial matrices
     (T_i x N), or an object with a ``sequences()`` method (e.g. ``BinnedCounts``).
     Every matrix must be 2-D with at least one row and one column, finite,
     non-negative and whole-numbered, and all must have the same number of columns
-    (``n_units`` if given). Raises InputError naming the sequence and the first bad
-    element.
+    (``n_units`` if given). Integer arrays are returned as they are (only their sign
+    needs checking), anything else as float64. Raises InputError naming the sequence
+    and the first bad element.
     """
     if hasattr(value, "sequences") and callable(value.sequences):
         value = value.sequences()
@@ -78,29 +80,42 @@ def check_count_sequences(name: str, value, *, n_units: int | None = None) -> li
         labels = [f"{name}[{i}]" for i in range(len(seqs))]
     out = []
     for lab, x in zip(labels, seqs):
+        if isinstance(x, np.ndarray) and x.dtype.kind in "ui" and x.ndim == 2:
+            _check_shape_units(lab, x, n_units, out)
+            if x.dtype.kind == "i" and x.size and x.min() < 0:
+                idx = tuple(int(i) for i in np.argwhere(x < 0)[0])
+                raise InputError(f"{lab}: element {idx} is {int(x[idx])}; spike counts must "
+                                 "be >= 0")
+            out.append(x)
+            continue
         x = check_array(lab, x, dtype=np.float64)
-        if x.ndim != 2:
-            raise InputError(f"{lab}: expected a 2-dimensional (bins x units) count matrix, "
-                             f"got shape {x.shape}")
-        if x.shape[0] == 0 or x.shape[1] == 0:
-            raise InputError(f"{lab}: expected at least one bin and one unit, got shape "
-                             f"{x.shape}")
+        _check_shape_units(lab, x, n_units, out)
         neg = x < 0
         if neg.any():
             idx = tuple(int(i) for i in np.argwhere(neg)[0])
-            raise InputError(f"{lab}: element {idx} is {float(x[idx])!r}; spike counts must be >= 0")
+            raise InputError(f"{lab}: element {idx} is {float(x[idx])!r}; spike counts must "
+                             "be >= 0")
         frac = x != np.floor(x)
         if frac.any():
             idx = tuple(int(i) for i in np.argwhere(frac)[0])
             raise InputError(f"{lab}: element {idx} is {float(x[idx])!r}; spike counts must be "
                              "whole numbers")
-        expected = n_units if n_units is not None else (out[0].shape[1] if out else None)
-        if expected is not None and x.shape[1] != expected:
-            what = "the fitted model" if n_units is not None else "the first sequence"
-            raise InputError(f"{lab}: has {x.shape[1]} units (columns) but {what} has "
-                             f"{expected}")
         out.append(x)
     return out
+
+
+def _check_shape_units(lab, x, n_units, previous):
+    if x.ndim != 2:
+        raise InputError(f"{lab}: expected a 2-dimensional (bins x units) count matrix, "
+                         f"got shape {x.shape}")
+    if x.shape[0] == 0 or x.shape[1] == 0:
+        raise InputError(f"{lab}: expected at least one bin and one unit, got shape "
+                         f"{x.shape}")
+    expected = n_units if n_units is not None else (previous[0].shape[1] if previous else None)
+    if expected is not None and x.shape[1] != expected:
+        what = "the fitted model" if n_units is not None else "the first sequence"
+        raise InputError(f"{lab}: has {x.shape[1]} units (columns) but {what} has "
+                         f"{expected}")
 
 
 def single_thread():
@@ -122,8 +137,10 @@ class _CountData:
         self.seqs = seqs
         self.lengths = np.array([len(x) for x in seqs], dtype=np.int64)
         self.offsets = np.concatenate([[0], np.cumsum(self.lengths)]).astype(np.int64)
-        self.X = seqs[0] if len(seqs) == 1 else np.concatenate(seqs, axis=0)
-        self.X = np.ascontiguousarray(self.X, dtype=np.float64)
+        if len(seqs) == 1:
+            self.X = np.ascontiguousarray(seqs[0], dtype=np.float64)
+        else:
+            self.X = np.concatenate(seqs, axis=0, dtype=np.float64)
         self.n_bins = int(self.offsets[-1])
         self.n_units = int(self.X.shape[1])
         self._log_fact = None
@@ -133,11 +150,10 @@ class _CountData:
     def log_fact(self) -> np.ndarray:
         """sum_i log(x_ti!) for every bin (constant in the parameters; computed once)."""
         if self._log_fact is None:
-            xi = self.X.astype(np.int64)
-            top = int(xi.max()) if xi.size else 0
-            if top <= 1_000_000:
+            top = int(self.X.max()) if self.X.size else 0
+            if top <= 10_000_000:
                 table = gammaln(np.arange(top + 1, dtype=np.float64) + 1.0)
-                self._log_fact = table[xi].sum(axis=1)
+                self._log_fact = row_log_factorial(self.X, table)
             else:  # pragma: no cover - absurd counts; fall back to direct evaluation
                 self._log_fact = gammaln(self.X + 1.0).sum(axis=1)
         return self._log_fact
@@ -238,7 +254,8 @@ class _CountHMMBase(BaseEstimator):
         """
         start, trans, rates = self._joint_params()
         data = self._data(X)
-        log_b = _log_emissions(data, rates)
+        with single_thread():
+            log_b = _log_emissions(data, rates)
         return float(forward_loglik(log_b, data.offsets, start, trans))
 
     def _sequence_logliks(self, data) -> np.ndarray:
@@ -250,7 +267,8 @@ class _CountHMMBase(BaseEstimator):
 
     def _posteriors(self, data):
         start, trans, rates = self._joint_params()
-        log_b = _log_emissions(data, rates)
+        with single_thread():
+            log_b = _log_emissions(data, rates)
         S = rates.shape[0]
         post = np.empty((data.n_bins, S))
         xi = np.empty((S, S))
@@ -276,7 +294,8 @@ class _CountHMMBase(BaseEstimator):
         """
         start, trans, rates = self._joint_params()
         data = self._data(X)
-        log_b = _log_emissions(data, rates)
+        with single_thread():
+            log_b = _log_emissions(data, rates)
         path = np.empty(data.n_bins, dtype=np.int64)
         with np.errstate(divide="ignore"):
             viterbi(log_b, data.offsets, np.log(start), np.log(trans), path)
@@ -289,7 +308,8 @@ class _CountHMMBase(BaseEstimator):
         """
         data = self._data(X)
         start, trans, rates = self._joint_params()
-        ll = forward_loglik(_log_emissions(data, rates), data.offsets, start, trans)
+        with single_thread():
+            ll = forward_loglik(_log_emissions(data, rates), data.offsets, start, trans)
         return float(-2.0 * ll + self.n_parameters() * np.log(data.n_bins))
 
 
