@@ -282,6 +282,14 @@ def test_works_with_sklearn_clone_and_cross_validation():
     assert scores.shape == (3,) and np.all(np.isfinite(scores))
 
 
+def test_unfitted_model_raises_not_fitted():
+    from sklearn.exceptions import NotFittedError
+
+    for method in ("score", "predict", "predict_proba", "bic"):
+        with pytest.raises(NotFittedError):
+            getattr(PoissonHMM(2), method)(np.ones((3, 2)))
+
+
 def test_binned_counts_accepted_and_list_outputs():
     rec, _ = switching_recording(n_units=5, n_states=2, n_trials=3, rng=0)
     b = bin_spikes(rec, bin_size=0.1)

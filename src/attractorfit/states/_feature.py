@@ -116,6 +116,18 @@ class BinaryFeatureHMM(_CountHMMBase):
     ----------
     .. [1] Ghahramani, Z. & Jordan, M. I. (1997). Factorial hidden Markov models.
        Machine Learning 29:245-273.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from attractorfit.states import BinaryFeatureHMM
+    >>> rng = np.random.default_rng(1)
+    >>> w = np.array([1.0, -1.0, 0.5, 0.0, 0.8, -0.6])       # one feature, 6 units
+    >>> x = np.repeat(rng.choice([-1, 1], size=(20, 8)), 10, axis=1)   # 20 trials
+    >>> X = [rng.poisson(np.exp(np.outer(xi, w))) for xi in x]
+    >>> m = BinaryFeatureHMM(1, rng=0).fit(X)
+    >>> bool(np.allclose(np.abs(m.weights_[:, 0]), np.abs(w), atol=0.2))  # up to sign
+    True
     """
 
     def __init__(self, n_features=2, *, n_restarts=3, max_iter=100, tol=1e-4,

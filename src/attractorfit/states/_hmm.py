@@ -14,8 +14,9 @@ References
 .. [2] Fox, E. B., Sudderth, E. B., Jordan, M. I. & Willsky, A. S. (2011). A sticky
    HDP-HMM with application to speaker diarization. Annals of Applied Statistics
    5:1020-1056.
-.. [3] Li, Y. & La Camera, G. (2025). A sticky Poisson hidden Markov model for
-   spike data. PLOS ONE 20:e0325979.
+.. [3] Li and La Camera (2025). PLOS ONE 20:e0325979 (sticky prior and BIC for
+   choosing the number of states of spike-count HMMs; cited from the project's issue,
+   title not verified).
 """
 
 from __future__ import annotations
@@ -231,6 +232,7 @@ class _CountHMMBase(BaseEstimator):
         return start, trans, rates
 
     def _data(self, X, name="X"):
+        check_is_fitted(self, list(self._chain_attrs))
         rates = np.asarray(self.rates_)
         n_units = rates.shape[1] if rates.ndim == 2 else None
         return _CountData(check_count_sequences(name, X, n_units=n_units))
@@ -385,6 +387,10 @@ class PoissonHMM(_CountHMMBase):
     state and its rates are the floor, not an estimate).
 
     The number of free parameters is (S - 1) + S (S - 1) + S N.
+
+    ``startprob_``, ``transmat_`` and ``rates_`` may be set by hand (e.g. to evaluate
+    given parameters); ``score``, ``predict``, ``predict_proba`` and ``bic`` check
+    their shapes and that the probabilities sum to 1.
 
     References
     ----------

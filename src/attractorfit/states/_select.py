@@ -1,6 +1,60 @@
 """Choice of the number of states of a Poisson HMM.
 
-RESULTS_PLACEHOLDER
+:func:`choose_n_states` fits a :class:`~attractorfit.states.PoissonHMM` for every
+candidate S and reports, per S, the log-likelihood of held-out trials (k-fold over
+whole trials), BIC [1]_ and ICL [2]_ (BIC plus twice the entropy of the posterior over
+state paths), and the S chosen by the requested rule.
+
+Default rule: sticky prior 0.2 + BIC
+------------------------------------
+Measured by ``benchmarks/bench_state_count.py`` (5 datasets per scenario, candidates
+1-10): switching recordings with 3-8 states, 40-100 units, 50-100 trials of 3 s,
+0.3 s mean dwell, 20 or 50 ms bins, and gamma-renewal spiking of order 2-4 (regular),
+1 (Poisson) and 0.5 (over-dispersed, Fano factor about 2); plus two stress scenarios
+(0.15 s dwell; weaker modulation). Fraction of datasets with the true S:
+
+===========================  =======  ===========================
+rule                         all 10   3 over-dispersed scenarios
+===========================  =======  ===========================
+BIC (sticky 0)               0.90     0.20, 0.80, 1.00
+ICL (sticky 0)               1.00     1.00, 1.00, 1.00
+held-out likelihood          0.78     0.00, 0.00, 1.00
+held-out, 1-SE rule [3]_     0.78     0.00, 0.00, 1.00
+sticky 0.05 + BIC            0.94     0.40, 1.00, 1.00
+sticky 0.2 + BIC (default)   1.00     1.00, 1.00, 1.00
+sticky 1.0 + BIC             1.00     1.00, 1.00, 1.00
+sticky 0.2 + BIC, fast=True  1.00     1.00, 1.00, 1.00
+===========================  =======  ===========================
+
+Every rule was right on regular and Poisson spiking. With over-dispersed (bursty)
+spiking, held-out likelihood over-segments badly (it chose 7-10 states for 4 and 6),
+as warned in [4]_, and plain BIC adds one to three states; the sticky prior (MAP
+self-transition pseudo-counts, see :class:`PoissonHMM`) removes the flickering extra
+states, and ICL, which penalises uncertain state paths, does the same. The default is
+the weakest sticky prior that was always right (0.2), with BIC; ICL is offered as an
+alternative. Spurious extra states from other sources of over-dispersion (slow gain
+changes across trials, drift) were not part of this measurement.
+
+On continuous-latent recordings (1-D Ornstein-Uhlenbeck latent, 40 units, no discrete
+states) the default rule chose 5, 8 and 6 states in three datasets (plain BIC: 6, 8,
+6): the number of states alone does not show that activity is discrete; that is the
+job of the discreteness test.
+
+Cost: ``fast=True`` (one restart, at most 50 EM iterations, no folds) takes about
+1-2 s for candidates 1-8 on 60 units x 100 trials x 150 bins on a shared 2-core
+machine; the default with 5 folds about 15-20 s.
+
+References
+----------
+.. [1] Schwarz, G. (1978). Estimating the dimension of a model. Annals of Statistics
+   6:461-464.
+.. [2] Biernacki, C., Celeux, G. & Govaert, G. (2000). Assessing a mixture model for
+   clustering with the integrated completed likelihood. IEEE Transactions on Pattern
+   Analysis and Machine Intelligence 22:719-725.
+.. [3] Hastie, T., Tibshirani, R. & Friedman, J. (2009). The Elements of Statistical
+   Learning, 2nd ed., Springer, section 7.10 (one-standard-error rule).
+.. [4] Li and La Camera (2025). PLOS ONE 20:e0325979 (cited from the project's
+   issue, title not verified).
 """
 
 from __future__ import annotations
@@ -208,6 +262,34 @@ def choose_n_states(sequences, *, candidates=range(1, 9), rule="bic", n_folds=5,
     ------
     InputError
         Bad sequences, candidates, rule, n_folds or options.
+
+    Notes
+    -----
+    The default (``rule="bic"``, ``sticky=0.2``) recovered the true number of states
+    in every benchmark dataset, including over-dispersed spiking where held-out
+    likelihood and plain BIC over-segment; see the module docstring for the figures.
+    BIC uses T = total number of bins and the plain log-likelihood of the (MAP) fit.
+    Candidates above the chosen one are worth inspecting: a rule that chooses the
+    largest candidate suggests widening the range.
+
+    References
+    ----------
+    .. [1] Schwarz, G. (1978). Estimating the dimension of a model. Annals of
+       Statistics 6:461-464.
+    .. [2] Biernacki, C., Celeux, G. & Govaert, G. (2000). Assessing a mixture model
+       for clustering with the integrated completed likelihood. IEEE Transactions on
+       Pattern Analysis and Machine Intelligence 22:719-725.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from attractorfit.states import choose_n_states
+    >>> rng = np.random.default_rng(0)
+    >>> rates = np.array([[0.5] * 8, [3.0] * 8])
+    >>> trials = [rng.poisson(rates[np.repeat(rng.integers(2, size=6), 10)])
+    ...           for _ in range(12)]
+    >>> choose_n_states(trials, candidates=[1, 2, 3], n_folds=3, rng=0).chosen
+    2
     """
     seqs = check_count_sequences("sequences", sequences)
     if rule not in RULES:
