@@ -440,9 +440,15 @@ def parallel_runner(*, jobs: int = 1, scheduler: str | None = None,
     cluster = client = None
     try:
         if local_cluster is not None:
-            cluster = distributed.LocalCluster(
-                n_workers=local_cluster, threads_per_worker=1, processes=True,
-                host="127.0.0.1", dashboard_address=None, silence_logs=logging.CRITICAL)
+            import dask
+
+            # no statistical profiler sampling the workers every 10 ms (its CPU time
+            # is taken from the tasks; nobody looks at a dashboard here)
+            with dask.config.set({"distributed.worker.profile.enabled": False}):
+                cluster = distributed.LocalCluster(
+                    n_workers=local_cluster, threads_per_worker=1, processes=True,
+                    host="127.0.0.1", dashboard_address=None,
+                    silence_logs=logging.CRITICAL)
             client = distributed.Client(cluster)
         else:
             try:
