@@ -63,8 +63,8 @@ def main():
     run(100, loads, rule="pseudoinverse", n_repeats=3)
     print("\n== rate picture, binary patterns, N = 60 (optimized rule, margin 0.2; its "
           "search grows fast with P) ==")
-    run(60, [0.1, 0.2, 0.3, 0.4, 0.5], rule="pseudoinverse", rng=1, n_repeats=3)
-    run(60, [0.1, 0.2, 0.3, 0.4, 0.5], rule="optimized", rng=1)
+    run(60, [0.1, 0.2, 0.3, 0.4, 0.5], rule="pseudoinverse", rng=1)
+    run(60, [0.1, 0.2, 0.3, 0.4], rule="optimized", rng=1)
     print("\n== spiking network, binary patterns, N = 200, 0.4 s per start ==")
     run(200, [0.1, 0.2, 0.3, 0.35, 0.4, 0.5, 0.6], rule="pseudoinverse", method="spiking",
         n_starts=1, duration=0.4)
