@@ -257,6 +257,12 @@ def _square_plus(item, data):
     return float(np.random.default_rng(seed).random() + data.sum())
 
 
+def _blas_threads(item):
+    from threadpoolctl import threadpool_info
+
+    return max([p["num_threads"] for p in threadpool_info()] or [1])
+
+
 def test_run_parallel_order_and_shared_data():
     seeds = np.random.SeedSequence(5).spawn(6)
     items = [(s, "ab"[i % 2]) for i, s in enumerate(seeds)]
@@ -267,6 +273,14 @@ def test_run_parallel_order_and_shared_data():
     assert serial == expected
     par = run_parallel(_square_plus, items, shared=shared, select=lambda it: it[1], jobs=2)
     assert par == serial
+    # BLAS/OpenMP pinned to one thread in every call (unless asked not to)
+    import sklearn.cluster  # noqa: F401  (loads OpenMP and a second BLAS)
+    from threadpoolctl import threadpool_info
+
+    default = max(p["num_threads"] for p in threadpool_info())
+    assert run_parallel(_blas_threads, [0, 1]) == [1, 1]
+    assert run_parallel(_blas_threads, [0], single_thread=False) == [default]
+    assert run_parallel(_blas_threads, [0, 1], jobs=2) == [1, 1]
     from attractorfit.sweep import _shutdown_loky
 
     _shutdown_loky()

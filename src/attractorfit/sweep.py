@@ -480,9 +480,19 @@ def _shared_handles(runner, shared, select, items):
     return out
 
 
+def _pinned(func_item, data=_NONE):
+    """Call ``func(item[, data])`` with BLAS/OpenMP pools pinned to one thread."""
+    from threadpoolctl import threadpool_limits
+
+    func, item = func_item
+    with threadpool_limits(limits=1):
+        return func(item) if isinstance(data, _NoneType) else func(item, data)
+
+
 def run_parallel(func, items, *, shared=None, select=None, jobs: int = 1,
                  scheduler: str | None = None, local_cluster: int | None = None,
-                 progress: bool = False, desc: str = "tasks") -> list:
+                 single_thread: bool = True, progress: bool = False,
+                 desc: str = "tasks") -> list:
     """Run ``func`` on every item, in this process, on joblib processes or on Dask.
 
     Deterministic by construction when each item carries its own seed (e.g. a
@@ -505,6 +515,9 @@ def run_parallel(func, items, *, shared=None, select=None, jobs: int = 1,
         ``item -> key`` into ``shared`` (evaluated here, not on the workers).
     jobs, scheduler, local_cluster :
         See :func:`parallel_runner`.
+    single_thread : bool
+        Pin BLAS/OpenMP pools to one thread in every call (threadpoolctl), so float
+        reductions do not depend on the worker's thread count.
     progress : bool
         One tqdm bar over the items.
     desc : str
@@ -527,6 +540,8 @@ def run_parallel(func, items, *, shared=None, select=None, jobs: int = 1,
     with parallel_runner(jobs=jobs, scheduler=scheduler, local_cluster=local_cluster) as run, \
             tqdm(total=len(items), desc=desc, disable=not progress, leave=False) as bar:
         data = _shared_handles(run, shared, select, items)
+        if single_thread:
+            func, items = _pinned, [(func, item) for item in items]
         for i, res in run.imap_unordered(func, items, data):
             out[i] = res
             bar.update(1)
