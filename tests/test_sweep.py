@@ -438,3 +438,21 @@ def test_rules_add_network_fit_and_comparison(inputs, tmp_path):
     assert doc["model"]["decoder_rule"] == "pseudoinverse"
     assert "not fitted" in json.loads((tmp_path / "net" / "tasks" /
                                        "rec0.npz_s1_pseudoinverse.json").read_text())["network"]
+
+
+def test_through_the_attractorfit_command(inputs, tmp_path, capsys):
+    """Once the lead wires add_sweep_command into the CLI: exit 2 with one line for
+    bad usage, exit 0 with a note per failed task when a corrupt input is recorded."""
+    from attractorfit import cli
+
+    sub = next(a for a in cli.build_parser()._actions
+               if isinstance(a, argparse._SubParsersAction))
+    if "sweep" not in sub.choices:
+        pytest.skip("the sweep command is not wired into the CLI yet")
+    assert cli.main(["sweep", inputs[0], "--states", "3:1", "--out", str(tmp_path / "o")]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "A <= B" in err
+    assert cli.main(["sweep", inputs[0], inputs[2], "--states", "1:1", "--out",
+                     str(tmp_path / "o"), "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert "task input=bad.npz;states=1 failed: InputError: bad.npz" in err
