@@ -32,10 +32,12 @@ For input ``I``, replicate ``b``, ``S`` states, code dimension ``K`` and rule ``
    in the same fold, so no trial is ever scored by a model that saw it).
 4. ``--dims K``: vertex codes of length ``K`` (combinations with ``2^K < S`` cannot give
    every state its own vertex and are left out of the grid).
-5. ``--rules R``: the network fit (:func:`attractorfit.fit.fit_network`) on a random
-   half of the trials, network surrogates, and the comparison with the held-out trials
-   (:func:`attractorfit.compare.compare`): fit loss, ``occupancy_tvd`` and
-   ``rate_r2`` with their references.
+5. ``--rules R``: the network fit (:func:`attractorfit.fit.fit_network`) on training
+   trials (``[compare] held_out_fraction`` of the trials, stratified by condition, are
+   kept out), network surrogates, and the comparison with the held-out trials
+   (:func:`attractorfit.compare.compare`) with the data's state model (no refit, no
+   null surrogates: those are for ``run`` on a chosen configuration): fit loss,
+   ``occupancy_tvd`` and ``rate_r2`` with their references.
 
 Chosen flags: within each input, dimension, rule and replicate, ``chosen_bic`` marks the
 ``S`` with the smallest BIC and ``chosen_heldout`` the ``S`` with the largest held-out
@@ -1067,8 +1069,8 @@ def add_sweep_command(sub) -> None:
                         "combinations with 2^K below the number of states are left out")
     p.add_argument("--rules", nargs="+", metavar="RULE",
                    help="decoder rules (pseudoinverse, optimized, hebbian): adds the "
-                        "network fit on half of the trials and its comparison with the "
-                        "other half")
+                        "network fit on training trials and its comparison with the "
+                        "held-out ones (compare.held_out_fraction, default half)")
     p.add_argument("--bootstrap", type=int, default=0, metavar="N",
                    help="also N replicates that resample trials with replacement "
                         "(replicate 0 is the data as recorded)")
