@@ -101,9 +101,10 @@ def simulate_trial(state, encoder_t, decoder_t, bias, threshold, reset, noise_co
         if has_drive:
             for q in range(k):
                 z[q] += drive[step, q]
+        z0 = z[0]
         for i in range(n):
-            inp[i] = bias[i]
-        for q in range(k):
+            inp[i] = bias[i] + encoder_t[0, i] * z0
+        for q in range(1, k):
             zq = z[q]
             for i in range(n):
                 inp[i] += encoder_t[q, i] * zq
