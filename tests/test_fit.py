@@ -573,3 +573,25 @@ def test_rank_larger_than_units_and_unassigned_data():
 
     with pytest.raises(InputError, match="no bin of the training trials is assigned"):
         fit_network(binned, _FakeStateFit(rates, codes, decode=lambda b: _Nothing()))
+
+
+def test_extra_neurons_hypercube_and_hebbian_options(small):
+    import json
+
+    rec, binned, sf = small
+    f = fit_network(binned, sf, recording=rec, extra_neurons=5, hypercube=True,
+                    rule="hebbian", condition=False, rng=2, progress=True, **FAST)
+    n = binned.n_units
+    assert f.network.n_neurons == n + 5 and f.extra_neurons == 5
+    # extra neuron j copies unit j mod N
+    np.testing.assert_array_equal(f.network.encoder[n:], f.network.encoder[:5])
+    np.testing.assert_array_equal(f.model_rates_hz[:, n:], f.model_rates_hz[:, :5])
+    assert np.all((np.abs(f.network.encoder) > 0).sum(axis=1) <= 1)
+    assert f.condition is None and f.start_probs.shape == (1, 3)
+    rec_sur = f.simulate_recording(rng=0)
+    assert rec_sur.unit_ids == list(binned.unit_ids)          # extra neurons left out
+    blk = f.summary_block()
+    assert blk["extra_neurons"] == 5 and blk["decoder_rule"] == "hebbian"
+    assert blk["hypercube_encoder"] is True
+    json.dumps(blk)                                           # plain values only
+    assert np.all(np.isnan(f.requested_margins))

@@ -28,7 +28,10 @@ The fit, step by step (DESIGN.md, network model and Amendments 1, 2, 3, 5):
    time equals the data's, where the model's dwell times and occupancy come from decoding
    simulated spikes with the data's state model (binned like the data), with the same
    random numbers at every step. ``D`` is refitted at each step.
-6. *Trial structure.* Surrogate trials have the data's analysis-window lengths and
+6. *Occupancy* (optimized rule). The stability margin asked of each vertex is a depth
+   knob (a lower bound on ``-max Re eig(J)``, never an equality: DESIGN Amendment 2);
+   a few rounds raise it at under-visited states and lower it at over-visited ones.
+7. *Trial structure.* Surrogate trials have the data's analysis-window lengths and
    labels, and each starts at the vertex of a state drawn (stratified) from the
    distribution of the first state of the data's trials of the same condition.
 
@@ -96,8 +99,13 @@ NOISE_RANGE = (0.05, 1.5)
 DEFAULT_NOISE = 0.5
 #: Window (s) at the start of a trial used to find the trial's first state.
 START_WINDOW_S = 0.2
-#: Simulated seconds per calibration evaluation by default (trials of the data's lengths).
+#: Simulated seconds per calibration evaluation of the tau_s search (trials of the data's
+#: lengths).
 CALIBRATION_SECONDS = 120.0
+#: Simulated seconds per evaluation of the depth rounds (at most the training trials').
+DEPTH_CALIBRATION_SECONDS = 420.0
+#: Readout noise s.d. over vertex spacing where the tau_s search starts.
+START_NOISE_RATIO = 0.4
 #: Range of per-vertex stability margins (units of 1 / tau_s) of the depth adjustment.
 MARGIN_RANGE = (0.005, 0.5)
 #: Silent time (s) between consecutive surrogate trials.
@@ -788,11 +796,12 @@ class NetworkFit:
         Code length of the state model (``rank`` is larger when private axes were
         appended).
     n_simulations : int
-        Network simulations run during calibration (each of ``n_calibration_trials``).
+        Network simulations run during calibration (``history["n_trials"]`` trials each).
     n_calibration_trials : int
+        Trials per evaluation of the ``tau_s`` search.
     history : dict of ndarray
-        ``tau_s``, ``mean_dwell_s``, ``occupancy_tvd``, ``dwell_loss``, ``loss`` and
-        depth ``round`` of every calibration evaluation.
+        ``tau_s``, ``mean_dwell_s``, ``occupancy_tvd``, ``dwell_loss``, ``loss``, depth
+        ``round`` and ``n_trials`` simulated, for every calibration evaluation.
     data_isi_cv : float
         The data's median within-trial ISI CV (NaN when not measured).
     noise_clipped : bool
@@ -1290,8 +1299,8 @@ def _check_state_fit(state_fit, n_units):
 
 def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, extra_neurons=0,
                 rank=None, tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None, condition=None,
-                train_trials=None, n_calibration_sims=None, max_evaluations=12,
-                dwell_tol=0.05, margin=0.05, depth_iterations=1, occupancy_tol=0.03,
+                train_trials=None, n_calibration_sims=None, max_evaluations=14,
+                dwell_tol=0.05, margin=0.05, depth_iterations=3, occupancy_tol=0.03,
                 rng=None, progress=False) -> NetworkFit:
     """Fit a low-rank LIF network whose attractors sit at the data's states.
 
@@ -1333,8 +1342,8 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         Indices (into ``binned``'s trials) of the trials to fit from; the others are
         left for held-out comparison (DESIGN Amendment 5). Default: all.
     n_calibration_sims : int, optional
-        Trials simulated per calibration evaluation. Default: enough for about 180 s of
-        simulated time, at least 20.
+        Trials simulated per evaluation of the ``tau_s`` search. Default: enough for about
+        ``CALIBRATION_SECONDS`` (120 s) of simulated time, at least 20.
     max_evaluations : int
         Largest number of calibration evaluations (network simulations).
     dwell_tol : float
@@ -1343,10 +1352,13 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         Stability margin (units of ``1 / tau_s``) the optimized rule asks of every vertex
         at first (a lower bound, not an equality: DESIGN Amendment 2).
     depth_iterations : int
-        Optimized rule only: rounds of per-vertex depth adjustment. After each round the
-        margin asked of each vertex is multiplied by (data occupancy / model occupancy)
-        of its state (clipped to [1/3, 3] per round and to ``MARGIN_RANGE``), the decoder
-        is refitted and ``tau_s`` searched again from the last value.
+        Optimized rule only: rounds of per-vertex depth adjustment, run on a larger
+        calibration set (about the training trials' size, at most
+        ``DEPTH_CALIBRATION_SECONDS`` of simulated time). Each round evaluates the
+        current decoder at the current ``tau_s`` (searching ``tau_s`` again if the dwell
+        time moved out of tolerance); then the margin asked of each vertex is multiplied
+        by (data occupancy / model occupancy) of its state (clipped to [1/3, 3] per round
+        and to ``MARGIN_RANGE``) and the decoder refitted.
     occupancy_tol : float
         Depth rounds stop once the calibration occupancy TVD is at most this.
     rng : None, int or numpy.random.Generator
@@ -1367,10 +1379,10 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
 
     Notes
     -----
-    Cost: each calibration evaluation simulates ``n_calibration_sims`` trials (about
-    180 s of network time by default: some 1.5 s for 64 neurons at ``dt = 1e-4``) and
-    decodes them; the search stops after ``max_evaluations`` or when the mean dwell time
-    is within ``dwell_tol``.
+    Cost: each evaluation of the ``tau_s`` search simulates ``n_calibration_sims`` trials
+    (about 120 s of network time by default: some 1 s for 64 neurons at ``dt = 1e-4``) and
+    decodes them; a depth round simulates up to 420 s. At most ``max_evaluations``
+    simulations in all. The optimized decoder is solved once per depth round.
 
     References
     ----------
@@ -1519,46 +1531,54 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     durations_all = binned.n_valid * binned.bin_size
     n_train = train.size
     mean_len = float(np.mean(durations_all[train]))
+    pick_rng = np.random.default_rng(seed_alloc)
+    unit_ids = list(binned.unit_ids)
+    level_of = np.full(binned.n_trials, len(levels), dtype=np.int64)
+    if cond is not None:
+        for i, v in enumerate(binned.labels[cond]):
+            if not _is_missing(v) and _level_text(v) in levels:
+                level_of[i] = levels.index(_level_text(v))
+
+    def calibration_set(n_cal, seed):
+        """Trials simulated per evaluation: a random subset of the training trials (all
+        of them, repeated, when more are asked for; a random subset so that periodic
+        label sequences are not aliased), first states stratified by level."""
+        pick = np.concatenate([np.tile(train, n_cal // n_train),
+                               np.sort(pick_rng.choice(train, n_cal % n_train, replace=False))])
+        first_state = _allocate_starts(level_of[pick], start_probs, pick_rng)
+        return {"n_valid": binned.n_valid[pick], "durations": binned.n_valid[pick] * binned.bin_size,
+                "labels": {key: np.asarray(v)[pick] for key, v in binned.labels.items()},
+                "y0": codes[first_state].astype(float), "seed": seed, "n": int(n_cal)}
+
     if n_calibration_sims is None:
         n_cal = max(20, int(math.ceil(CALIBRATION_SECONDS / mean_len)))
     else:
         n_cal = check_int("n_calibration_sims", n_calibration_sims, low=1)
-    # calibration trials: a random subset of the training trials (all of them, repeated,
-    # when more are asked for), so that periodic label sequences are not aliased
-    pick_rng = np.random.default_rng(seed_alloc)
-    pick = np.concatenate([np.tile(train, n_cal // n_train),
-                           np.sort(pick_rng.choice(train, n_cal % n_train, replace=False))])
-    cal_nvalid = binned.n_valid[pick]
-    cal_labels = {key: np.asarray(v)[pick] for key, v in binned.labels.items()}
-    cal_rows = np.full(n_cal, len(levels), dtype=np.int64)
-    if cond is not None:
-        for i, v in enumerate(binned.labels[cond][pick]):
-            if not _is_missing(v) and _level_text(v) in levels:
-                cal_rows[i] = levels.index(_level_text(v))
-    cal_first = _allocate_starts(cal_rows, start_probs, pick_rng)
-    cal_y0 = codes[cal_first].astype(float)
-    cal_dur = cal_nvalid * binned.bin_size
-    unit_ids = list(binned.unit_ids)
+    n_depth = max(n_cal, int(math.ceil(min(DEPTH_CALIBRATION_SECONDS,
+                                           mean_len * n_train) / mean_len)))
+    cal_small = calibration_set(n_cal, seed_cal)
+    cal_large = calibration_set(n_depth, seed_cal + 1) if n_depth > n_cal else cal_small
 
     hist = {"tau_s": [], "mean_dwell_s": [], "occupancy_tvd": [], "dwell_loss": [],
-            "loss": [], "round": []}
+            "loss": [], "round": [], "n_trials": []}
     occs, decoders, depths = [], [], []
     bar = None
     if progress:
         from tqdm import tqdm
         bar = tqdm(total=max_evaluations, desc="fit tau_s", leave=False)
 
-    def record(tau, dec, round_):
+    def record(tau, dec, round_, cal):
         net = build(tau, dec)
-        spikes, _ = _simulate(net, cal_dur, cal_y0, dt, seed_cal, n_units)
-        sim = _bin_trials(spikes, cal_nvalid, binned.bin_size, unit_ids, cal_labels)
+        spikes, _ = _simulate(net, cal["durations"], cal["y0"], dt, cal["seed"], n_units)
+        sim = _bin_trials(spikes, cal["n_valid"], binned.bin_size, unit_ids, cal["labels"])
         decoded = state_fit.decode(sim)
         dwell = _pooled_dwell(decoded)
         occ = np.nan_to_num(np.asarray(decoded.occupancy, float))
         f = math.log(dwell / target_dwell) if np.isfinite(dwell) and dwell > 0 else -10.0
         tvd = _tvd(occ, target_occ)
         for key, val in (("tau_s", tau), ("mean_dwell_s", dwell), ("occupancy_tvd", tvd),
-                         ("dwell_loss", abs(f)), ("loss", abs(f) + tvd), ("round", round_)):
+                         ("dwell_loss", abs(f)), ("loss", abs(f) + tvd), ("round", round_),
+                         ("n_trials", cal["n"])):
             hist[key].append(val)
         occs.append(occ)
         decoders.append(dec)
@@ -1572,11 +1592,15 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     tol = math.log1p(dwell_tol)
     bounds = (math.log(lo_tau), math.log(hi_tau))
 
-    def search(x0, dec, round_):
-        """Bracketing secant search on log tau_s for the mean dwell time (one round)."""
-        first_eval = len(hist["tau_s"])
+    def search(x0, dec, round_, cal, f0=None):
+        """Bracketing secant search on log tau_s for the mean dwell time (one round).
+
+        ``f0``: log dwell ratio already measured at ``x0`` (its evaluation is the last
+        one recorded)."""
+        first_eval = len(hist["tau_s"]) - (f0 is not None)
         a, b = bounds
-        f0 = record(math.exp(x0), dec, round_)
+        if f0 is None:
+            f0 = record(math.exp(x0), dec, round_, cal)
         xa = xb = fa = fb = None
         if f0 < 0:
             xa, fa = x0, f0
@@ -1590,7 +1614,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 if xb <= a + 1e-9:
                     break
                 x1 = max(a, xb - grow * min(max(fb / slope, 0.15), 1.5))
-                f1 = record(math.exp(x1), dec, round_)
+                f1 = record(math.exp(x1), dec, round_, cal)
                 if f1 < 0:
                     xa, fa = x1, f1
                 else:
@@ -1603,7 +1627,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 if xa >= b - 1e-9:
                     break
                 x1 = min(b, xa + grow * min(max(-fa / slope, 0.15), 1.5))
-                f1 = record(math.exp(x1), dec, round_)
+                f1 = record(math.exp(x1), dec, round_, cal)
                 if f1 >= 0:
                     xb, fb = x1, f1
                 else:
@@ -1621,7 +1645,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
             x1 = xb - fb * (xb - xa) / (fb - fa) if fb != fa else 0.5 * (xa + xb)
             if not (xa + 0.05 * (xb - xa) <= x1 <= xb - 0.05 * (xb - xa)):
                 x1 = 0.5 * (xa + xb)
-            f1 = record(math.exp(x1), dec, round_)
+            f1 = record(math.exp(x1), dec, round_, cal)
             if f1 < 0:
                 xa, fa = x1, f1
                 if side == -1:
@@ -1635,22 +1659,52 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         here = np.arange(first_eval, len(hist["tau_s"]))
         return int(here[np.argmin(np.asarray(hist["dwell_loss"])[here])])
 
-    best_round = search(0.5 * (bounds[0] + bounds[1]), dec1, 0)
-    if rule == "optimized":
+    # stage 1: tau_s for the mean dwell time, on the small calibration set. Start where
+    # the predicted readout noise s.d. is START_NOISE_RATIO of the vertex spacing (it
+    # scales as 1 / sqrt(tau_s)): a rule of thumb from our benchmarks, only a start.
+    ratio_ref = float(np.max(readout_noise_ratio(build(tau_ref, dec1), codes, dt=dt)))
+    x_start = math.log(tau_ref * (ratio_ref / START_NOISE_RATIO) ** 2) \
+        if np.isfinite(ratio_ref) and ratio_ref > 0 else 0.5 * (bounds[0] + bounds[1])
+    best_round = search(min(max(x_start, bounds[0]), bounds[1]), dec1, 0, cal_small)
+    stage2 = len(hist["tau_s"])
+    if rule == "optimized" and depth_iterations > 0 and len(hist["tau_s"]) < max_evaluations:
+        # stage 2: per-vertex depth, on a calibration set of about the data's size (the
+        # occupancy of a small set is too noisy to steer by)
+        dec_r = decoders[best_round]
+        x = math.log(hist["tau_s"][best_round])
+        best_tvd, best_depth = np.inf, depth.copy()
         for round_ in range(1, depth_iterations + 1):
-            if (hist["occupancy_tvd"][best_round] <= occupancy_tol
-                    or len(hist["tau_s"]) >= max_evaluations):
+            if len(hist["tau_s"]) >= max_evaluations:
                 break
-            # deepen the wells of under-visited states, flatten the over-visited ones
-            ratio = np.clip((target_occ + 0.01) / (occs[best_round] + 0.01), 1 / 3, 3.0)
-            depth = np.clip(depths[best_round] * ratio, MARGIN_RANGE[0], MARGIN_RANGE[1])
+            f = record(math.exp(x), dec_r, round_, cal_large)
+            if abs(f) > tol:
+                last = search(x, dec_r, round_, cal_large, f0=f)
+            else:
+                last = len(hist["tau_s"]) - 1
+            tvd_last = hist["occupancy_tvd"][last]
+            if hist["dwell_loss"][last] <= tol and tvd_last < best_tvd:
+                best_tvd, best_depth = tvd_last, depths[last].copy()
+                x = math.log(hist["tau_s"][last])
+                if tvd_last <= occupancy_tol:
+                    break
+                # deepen the wells of under-visited states, flatten the over-visited ones
+                ratio = np.clip((target_occ + 0.01) / (occs[last] + 0.01), 1 / 3, 3.0)
+                depth = np.clip(best_depth * ratio, MARGIN_RANGE[0], MARGIN_RANGE[1])
+            else:
+                # no better than the best so far: go back half way (in log margin)
+                depth = np.sqrt(best_depth * depth)
+            if np.allclose(depth, depths[last], rtol=1e-3):
+                break
             dec_r = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=tau_ref,
                                 margin=depth)
-            best_round = search(math.log(hist["tau_s"][best_round]), dec_r, round_)
     if bar is not None:
         bar.close()
     dwell_ok = np.asarray(hist["dwell_loss"]) <= tol
-    pool = np.flatnonzero(dwell_ok) if dwell_ok.any() else np.arange(len(hist["tau_s"]))
+    # prefer the evaluations on the larger set (stage 2) when one meets the dwell target
+    late = np.arange(len(hist["tau_s"])) >= stage2
+    pool = np.flatnonzero(dwell_ok & late)
+    if pool.size == 0:
+        pool = np.flatnonzero(dwell_ok) if dwell_ok.any() else np.arange(len(hist["tau_s"]))
     best = int(pool[np.argmin(np.asarray(hist["loss"])[pool])])
     tau = float(hist["tau_s"][best])
     dec = decoders[best]
