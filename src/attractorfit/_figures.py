@@ -121,8 +121,14 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
     labels = [f"{s} {t}" for s, t in enumerate(sf.vertex_text)]
     dec = sf.decoding
 
+    rcfg = result.config.get("report", {})
+    formats = tuple(rcfg.get("figure_formats", ("png", "svg")))
+    if "png" not in formats:
+        formats = ("png",) + formats  # the report embeds the PNG
+    dpi = rcfg.get("dpi", 200)
+
     def add(sec_blocks, fig, name, caption):
-        figures[name] = plots.save_figure(fig, fig_dir, name)
+        figures[name] = plots.save_figure(fig, fig_dir, name, formats=formats, dpi=dpi)
         sec_blocks.append(FigureBlock(figures[name][0], caption=caption, name=name))
 
     # --- states
@@ -165,7 +171,7 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
         add(blocks, fig, "dwell_survival",
             "Dwell-time survival per state (Kaplan-Meier; ticks mark censored dwells cut by "
             "a trial edge).")
-        fig = plots.transition_matrices(dec.transition_probs, state_labels=labels,
+        fig = plots.transition_matrices(_finite(dec.transition_probs), state_labels=labels,
                                         off_diagonal=True,
                                         quantity="probability of the next state")
         add(blocks, fig, "transitions", "Which state follows which (rows: from, columns: to).")
@@ -268,7 +274,8 @@ def _model_sections(result, labels, add):
     add(blocks, fig, "dwell_survival",
         "Dwell-time survival per state, data vs surrogates (Kaplan-Meier; ticks mark dwells "
         "cut by a trial edge, treated as censored).")
-    fig = plots.transition_matrices(c.transitions_data, c.transitions_model, state_labels=labels,
+    fig = plots.transition_matrices(_finite(c.transitions_data), _finite(c.transitions_model),
+                                    state_labels=labels,
                                     off_diagonal=True, quantity="probability of the next state")
     add(blocks, fig, "transitions", "Which state follows which, data and surrogates "
         "(rows: from, columns: to).")
@@ -344,6 +351,11 @@ def _model_sections(result, labels, add):
                                 r.text, assumptions={"null": r.description,
                                                      "null surrogates": str(r.n_surrogates)}))
     return sections, verdicts, None
+
+
+def _finite(m):
+    """Transition rows of states never left are undefined (NaN): drawn as zeros."""
+    return np.nan_to_num(np.asarray(m, dtype=float), nan=0.0)
 
 
 def _cosine(rate, patterns):

@@ -82,6 +82,9 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "posterior_threshold": Param(0.8, "a bin is assigned to a state when its posterior "
                                           "exceeds this", _num(0.5, 1.0, lo_open=True),
                                      "a number in (0.5, 1]"),
+        "latent_dims": Param(0, "dimensions of the factor-analysis latent space the vertex "
+                                "codes are fitted in; 0 chooses them by cross-validation",
+                             _num(0, 64, integer=True), "a whole number from 0 to 64"),
         "min_segment_s": Param(0.05, "state segments shorter than this are left unassigned, "
                                      "seconds", _num(0), "a number >= 0"),
     },
@@ -127,6 +130,14 @@ PARAMETERS: dict[str, dict[str, Param]] = {
                        lambda v: isinstance(v, bool), "true or false"),
         "n_boot": Param(500, "bootstrap resamples for confidence intervals",
                         _num(10, 100000, integer=True), "a whole number >= 10"),
+    },
+    "report": {
+        "figure_formats": Param(["png", "svg"], "file formats of the figures under figures/",
+                                lambda v: isinstance(v, list) and len(v) > 0 and all(
+                                    x in ("png", "svg", "pdf") for x in v),
+                                "a non-empty list drawn from png, svg, pdf"),
+        "dpi": Param(200, "resolution of PNG figures (dots per inch)",
+                     _num(50, 1200, integer=True), "a whole number from 50 to 1200"),
     },
     "run": {
         "seed": Param(0, "seed of every random stream of the run", _num(0, 2**63 - 1, integer=True),

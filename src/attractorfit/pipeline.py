@@ -200,6 +200,7 @@ def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int
         state_fit = analyse_states(analysed, n_states=n_states, candidates=candidates,
                                    posterior_threshold=st["posterior_threshold"],
                                    min_segment_s=st["min_segment_s"],
+                                   latent_dims=st.get("latent_dims") or None,
                                    rng=np.random.default_rng(state_seed), n_jobs=n_jobs)
         disc = None
         if discreteness:
