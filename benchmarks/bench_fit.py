@@ -18,7 +18,8 @@ print:
                 surrogate vs data (target >= 0.9);
 * ``dwell``     pooled Kaplan-Meier mean dwell time, surrogate / data (target within 10%);
 * ``unstable``  vertices that are not stable fixed points; ``spur`` spurious attractors;
-* ``t_fit``     seconds to fit (one core).
+* ``t_fit``     seconds to fit, wall clock, and ``t_cpu`` CPU seconds (one thread; the
+                wall time grows when other processes share the cores).
 
 Run:  python benchmarks/bench_fit.py [--quick]
 """
@@ -83,7 +84,7 @@ def main(argv=None):
     scenarios = SCENARIOS[:2] if args.quick else SCENARIOS
     print(f"{'N':>4} {'S':>2} {'min':>3} {'setting':>8} {'K':>2} {'tau_s':>7} {'noise':>6} "
           f"{'tvd':>6} {'tvd_ref':>7} {'rate_r2':>7} {'dwell':>6} {'unas':>5} "
-          f"{'unstable':>8} {'spur':>4} {'sims':>4} {'t_fit':>6}")
+          f"{'unstable':>8} {'spur':>4} {'sims':>4} {'t_fit':>6} {'t_cpu':>6}")
     rows = []
     for n_units, n_states, minutes, seed in scenarios:
         n_trials = int(round(minutes * 60 / 3.0))
@@ -96,18 +97,19 @@ def main(argv=None):
                 print(f"{n_units:>4} {n_states:>2} {minutes:>3} {name:>8}  skipped: "
                       f"S (1 + K) = {n_states * n_states} constraints for {n_units} neurons")
                 continue
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 fit = fit_network(binned, sf, recording=rec, rng=seed, **opts)
-            t_fit = time.perf_counter() - t0
+            t_fit, t_cpu = time.perf_counter() - t0, time.process_time() - c0
             tvd, ref, r2, dwell, unas = evaluate(fit, binned, sf, 1000 + seed)
             rows.append((n_units, n_states, name, tvd, ref, r2, dwell, t_fit,
-                         len(fit.unstable_vertices)))
+                         len(fit.unstable_vertices), t_cpu))
             print(f"{n_units:>4} {n_states:>2} {minutes:>3} {name:>8} {fit.rank:>2} "
                   f"{fit.tau_s:7.4f} {fit.noise:6.3f} {tvd:6.3f} {ref:7.3f} {r2:7.3f} "
                   f"{dwell:6.3f} {unas:5.2f} {len(fit.unstable_vertices):>8} "
-                  f"{len(fit.spurious_points):>4} {fit.n_simulations:>4} {t_fit:6.1f}",
+                  f"{len(fit.spurious_points):>4} {fit.n_simulations:>4} {t_fit:6.1f} "
+                  f"{t_cpu:6.1f}",
                   flush=True)
     print()
     for name, _ in SETTINGS:
@@ -117,14 +119,16 @@ def main(argv=None):
         tvd = np.array([r[3] for r in sel])
         r2 = np.array([r[5] for r in sel])
         dw = np.array([r[6] for r in sel])
-        print(f"{name:>8}: tvd<=0.05 in {np.sum(tvd <= 0.05)}/{len(sel)} (median {np.median(tvd):.3f}); "
+        print(f"{name:>8}: tvd<=0.05 in {np.sum(tvd <= 0.05)}/{len(sel)} "
+              f"(median {np.median(tvd):.3f}); "
               f"rate_r2>=0.9 in {np.sum(r2 >= 0.9)}/{len(sel)} (median {np.median(r2):.3f}); "
               f"dwell within 10% in {np.sum(np.abs(dw - 1) <= 0.1)}/{len(sel)}; "
               f"all vertices stable in {sum(r[8] == 0 for r in sel)}/{len(sel)}")
-    t64 = [r[7] for r in rows if r[0] == 64 and r[1] == 4]
+    t64 = [(r[2], r[7], r[9]) for r in rows if r[0] == 64 and r[1] == 4]
     if t64:
-        print("time to fit a 64-unit, 7-minute recording (4 states): "
-              + ", ".join(f"{name} {t:.1f} s" for (name, _), t in zip(SETTINGS, t64)))
+        print("time to fit a 64-unit, 7-minute recording (4 states), wall / CPU: "
+              + ", ".join(f"{name} {t:.1f} s / {c:.1f} s" for name, t, c in t64))
+    print(f"load average at the end: {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
 
 
 if __name__ == "__main__":

@@ -2,7 +2,6 @@
 
 import io
 import itertools
-import warnings
 
 import numpy as np
 import pytest
@@ -29,7 +28,6 @@ from attractorfit.network import (
     LowRankNetwork,
     decoder_pseudoinverse,
     hypercube_encoder,
-    siegert_rate,
     transfer_rate,
     transfer_slope,
     vertex_codes,

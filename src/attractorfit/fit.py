@@ -11,8 +11,10 @@ The fit, step by step (DESIGN.md, network model and Amendments 1, 2, 3, 5):
    ``train_trials``, the posterior-weighted rates of those trials).
 2. *Noise* (``noise``, the white-noise amplitude of the membrane in the Siegert
    convention). Chosen so that the model's median ISI coefficient of variation over
-   units equals the data's (see :func:`noise_from_isi_cv`); it is *not* a knob for dwell
-   times.
+   units equals the data's, both in time rescaled by each unit's state-dependent rate
+   (so that switching between states does not count as irregularity; see
+   :func:`rescaled_isi_cv` and :func:`noise_from_isi_cv`). It is *not* a knob for dwell
+   times (DESIGN Amendment 2).
 3. *Encoder and bias.* Per unit, ``E[i]`` and ``bias[i]`` by least squares of
    ``phi^-1(r_i^mu)`` on ``[x^mu, 1]`` (``phi`` the transfer function at the simulator's
    step), then a few Gauss-Newton steps on the squared error in rate space; with
@@ -510,17 +512,6 @@ def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0
 
 
 # ============================================================================ data side
-@dataclass
-class _Targets:
-    rates_hz: np.ndarray          # S x N
-    occupancy: np.ndarray         # S
-    mean_dwell_s: float           # pooled KM restricted mean
-    state_dwell_s: np.ndarray     # S
-    first_state: np.ndarray       # per train trial
-    isi_cv: float                 # median over units (NaN if unknown)
-    unassigned_fraction: float
-
-
 def _pooled_dwell(decoding) -> float:
     """Kaplan-Meier restricted mean over all assigned segments (censored at trial edges)."""
     from attractorfit.states._segments import kaplan_meier
@@ -1298,8 +1289,8 @@ def _check_state_fit(state_fit, n_units):
 
 
 def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, extra_neurons=0,
-                rank=None, tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None, condition=None,
-                train_trials=None, n_calibration_sims=None, max_evaluations=14,
+                rank=None, tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None,
+                condition=None, train_trials=None, n_calibration_sims=None, max_evaluations=14,
                 dwell_tol=0.05, margin=0.05, depth_iterations=3, occupancy_tol=0.03,
                 rng=None, progress=False) -> NetworkFit:
     """Fit a low-rank LIF network whose attractors sit at the data's states.
@@ -1546,7 +1537,8 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         pick = np.concatenate([np.tile(train, n_cal // n_train),
                                np.sort(pick_rng.choice(train, n_cal % n_train, replace=False))])
         first_state = _allocate_starts(level_of[pick], start_probs, pick_rng)
-        return {"n_valid": binned.n_valid[pick], "durations": binned.n_valid[pick] * binned.bin_size,
+        n_valid = binned.n_valid[pick]
+        return {"n_valid": n_valid, "durations": n_valid * binned.bin_size,
                 "labels": {key: np.asarray(v)[pick] for key, v in binned.labels.items()},
                 "y0": codes[first_state].astype(float), "seed": seed, "n": int(n_cal)}
 
