@@ -95,11 +95,17 @@ PARAMETERS: dict[str, dict[str, Param]] = {
                        "a number in (0, 0.5]"),
     },
     "network": {
-        "rule": Param("pseudoinverse", "decoder rule: 'pseudoinverse' (projection rule), "
-                                       "'optimized' (least readout noise, stability margins) "
-                                       "or 'hebbian'",
+        "rule": Param("optimized", "decoder rule: 'optimized' (least readout noise with "
+                                   "stability margins; the only rule that kept every vertex "
+                                   "stable in our benchmark), 'pseudoinverse' (projection "
+                                   "rule) or 'hebbian'",
                       _choice("pseudoinverse", "optimized", "hebbian"),
                       "one of pseudoinverse, optimized, hebbian"),
+        "rank": Param(0, "latent dimension K of the network: 0 uses the state model's code "
+                         "length; \"full\" adds private axes so any state rates can be fitted "
+                         "(slower for many states)",
+                      lambda v: v == "full" or _num(0, 64, integer=True)(v),
+                      "0, a whole number up to 64, or \"full\""),
         "hypercube": Param(False, "each model neuron reads one latent axis only (hypercube "
                                   "encoder)", lambda v: isinstance(v, bool), "true or false"),
         "extra_neurons": Param(0, "unrecorded model neurons added to lower readout shot "

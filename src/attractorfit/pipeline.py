@@ -311,6 +311,7 @@ def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
                                    np.random.default_rng(split_seed))
         _note(progress, "fitting the network")
         nf = fit_network(b, sf, rule=nw["rule"], hypercube=nw["hypercube"],
+                         rank=None if nw["rank"] in (0, None) else nw["rank"],
                          extra_neurons=nw["extra_neurons"],
                          tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
                          recording=rec, condition=cond if cond else False,

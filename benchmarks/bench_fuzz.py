@@ -1,0 +1,157 @@
+"""Longer fuzz run of every loader and the configuration parser (hypothesis).
+
+Any input must either load or raise attractorfit's InputError; anything else is a crash.
+Prints, per target, the number of inputs tried and the crashes found (with the first
+failing input's exception), and exits 1 if any target crashed.
+
+    python benchmarks/bench_fuzz.py [--examples 2000]
+"""
+
+from __future__ import annotations
+
+import argparse
+import io
+import os
+import tempfile
+import time
+import traceback
+import warnings
+
+import numpy as np
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from attractorfit.config import load_config
+from attractorfit.errors import InputError
+from attractorfit.io import load, write_nwb
+from attractorfit.synthetic import switching_recording
+
+COUNTS = {}
+CRASHES = {}
+
+
+def _attempt(target, fn):
+    COUNTS[target] = COUNTS.get(target, 0) + 1
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fn()
+    except InputError:
+        pass
+    except Exception as exc:  # noqa: BLE001 - a crash is what we are looking for
+        CRASHES.setdefault(target, []).append(
+            f"{type(exc).__name__}: {exc}\n{traceback.format_exc(limit=3)}")
+
+
+HEADERS = st.sampled_from(["unit,time", "time,unit", "unit\ttime", "unit,time,extra",
+                           "u,t", "", "unit;time"])
+CELLS = st.one_of(st.integers(-5, 10**12).map(str), st.floats(allow_nan=True,
+                                                              allow_infinity=True).map(repr),
+                  st.text(max_size=6), st.sampled_from(["", "nan", "inf", "-0", "1e308",
+                                                        "0x10", "1,5", '"', "\x00"]))
+
+
+@st.composite
+def tables(draw):
+    head = draw(HEADERS)
+    rows = draw(st.lists(st.lists(CELLS, min_size=0, max_size=4), max_size=30))
+    sep = "\t" if "\t" in head else ","
+    return head + "\n" + "\n".join(sep.join(r) for r in rows)
+
+
+def fuzz(n):
+    tmp = tempfile.mkdtemp(prefix="af-fuzz-")
+    cfg = settings(max_examples=n, deadline=None, database=None,
+                   suppress_health_check=list(HealthCheck))
+
+    @cfg
+    @given(text=tables(), suffix=st.sampled_from([".csv", ".tsv", ".txt"]))
+    def table(text, suffix):
+        p = os.path.join(tmp, "spikes" + suffix)
+        with open(p, "w", encoding="utf-8", errors="surrogatepass") as fh:
+            fh.write(text)
+        _attempt("table", lambda: load(p))
+
+    @cfg
+    @given(data=st.binary(max_size=400))
+    def table_bytes(data):
+        p = os.path.join(tmp, "raw.csv")
+        with open(p, "wb") as fh:
+            fh.write(data)
+        _attempt("table bytes", lambda: load(p))
+
+    arrays = st.one_of(
+        st.lists(st.floats(allow_nan=True, allow_infinity=True), max_size=20).map(np.array),
+        st.lists(st.integers(-10, 10**9), max_size=20).map(np.array),
+        st.lists(st.text(max_size=4), max_size=10).map(np.array),
+        st.just(np.zeros((2, 2))), st.just(np.array(3.0)))
+
+    @cfg
+    @given(d=st.dictionaries(st.sampled_from(["spike_times", "spike_units", "trial_start",
+                                              "trial_stop", "trial_item", "x"]), arrays))
+    def npz(d):
+        p = os.path.join(tmp, "rec.npz")
+        np.savez(p, **d)
+        _attempt("npz", lambda: load(p))
+
+    rec, _ = switching_recording(n_units=4, n_states=2, n_trials=3, rng=0)
+    good = os.path.join(tmp, "good.nwb")
+    write_nwb(rec, good)
+    with open(good, "rb") as fh:
+        nwb_bytes = fh.read()
+
+    @cfg
+    @given(pos=st.lists(st.integers(0, len(nwb_bytes) - 1), min_size=1, max_size=8),
+           val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(nwb_bytes))))
+    def nwb(pos, val, cut):
+        b = bytearray(nwb_bytes)
+        for i in pos:
+            b[i] = val
+        if cut is not None:
+            b = b[:cut]
+        p = os.path.join(tmp, "mut.nwb")
+        with open(p, "wb") as fh:
+            fh.write(bytes(b))
+        _attempt("nwb (mutated)", lambda: load(p))
+
+    keys = st.sampled_from(["analysis", "states", "network", "compare", "report", "run", "x"])
+    names = st.sampled_from(["bin_size", "window", "n_states", "max_states", "rule", "dt",
+                             "nulls", "dpi", "seed", "align", "y"])
+    values = st.one_of(st.integers(-3, 10**20).map(str), st.floats().map(repr),
+                       st.text(max_size=5).map(repr), st.sampled_from(
+                           ["[]", "[1, 0]", "[0.0, 3.0]", "true", '"optimized"', "nan", "inf",
+                            '["poisson"]', "{}", "1979-05-27"]))
+
+    @cfg
+    @given(body=st.lists(st.tuples(keys, names, values), max_size=6),
+           junk=st.text(max_size=20))
+    def config(body, junk):
+        text = "\n".join(f"[{k}]\n{n} = {v}" for k, n, v in body) + "\n" + junk
+        p = os.path.join(tmp, "c.toml")
+        with open(p, "w", encoding="utf-8", errors="surrogatepass") as fh:
+            fh.write(text)
+        _attempt("config", lambda: load_config(p))
+
+    for f in (table, table_bytes, npz, nwb, config):
+        t = time.perf_counter()
+        f()
+        name = f.__name__
+        print(f"{name:<14} done in {time.perf_counter() - t:6.1f} s", flush=True)
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--examples", type=int, default=2000, help="examples per target")
+    args = ap.parse_args()
+    fuzz(args.examples)
+    print()
+    print(f"{'target':<16}{'inputs tried':>14}{'crashes':>10}")
+    for k, n in COUNTS.items():
+        print(f"{k:<16}{n:>14}{len(CRASHES.get(k, [])):>10}")
+    for k, v in CRASHES.items():
+        print(f"\nfirst crash in {k}:\n{v[0]}")
+    raise SystemExit(1 if CRASHES else 0)
+
+
+if __name__ == "__main__":
+    main()
