@@ -65,6 +65,17 @@ Verdict rule: ``"discrete"`` when p <= alpha; ``"not_discrete"`` when p > 2 alph
 A verdict is statistical evidence about these models of the data, not proof about
 the brain.
 
+Measured behaviour (``benchmarks/bench_discreteness.py``; 40 units, 60 trials of 2 s,
+50 ms bins, B = 39; one run): false-positive rate 0.015 over 200 datasets of the
+nominal null family (conservative: the p-values are not uniform, they gather at
+intermediate values because the null is fitted to the same data); 0.05 with regular
+(gamma-2) spiking and a 2-D latent, 0.025 with strong drift (1 log unit), 0 with a
+softplus link, but 0.10 with bursty
+(gamma-0.5) spiking and 0.35 with a heavy-tailed (non-Gaussian, unimodal) latent: the
+mixture statistic reads strong non-Gaussianity of the latent as clustering. Power 1.0
+on 4-state switching recordings (0.3 s dwells, log-rate modulation s.d. 0.6), but only
+0.125 at modulation s.d. 0.3.
+
 References
 ----------
 .. [1] Macke, J. H., Berens, P., Ecker, A. S., Tolias, A. S. & Bethge, M. (2009).
