@@ -64,7 +64,8 @@ def register(sub) -> None:
                    help="folder for the results (default: ./attractorfit_demo)")
     p.add_argument("--seed", type=int, default=None, metavar="N", help="seed (default 0)")
     p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes")
-    p.add_argument("--quiet", action="store_true", help="no progress notes")
+    p.add_argument("--quiet", action="store_true", help="no progress bar or summary lines")
+    p.add_argument("--verbose", action="store_true", help="log what each stage does")
     p.set_defaults(func=_demo)
 
     from attractorfit.sweep import add_sweep_command
@@ -244,12 +245,19 @@ def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress) -> int:
     from attractorfit import pipeline
     from attractorfit._figures import write_figures_and_report
 
+    from tqdm.auto import tqdm
+
     t0 = time.perf_counter()
-    if progress:
-        print(f"attractorfit: {rec}; finding states", file=sys.stderr)
-    res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=jobs, progress=progress and
-                              sys.stderr.isatty())
+    pipeline.log.info("%s", rec)
+    bar = tqdm(total=3, desc="states", unit="stage", disable=quiet or not sys.stderr.isatty(),
+               bar_format="{desc:<28}{bar:20} {n_fmt}/{total_fmt} [{elapsed}]")
+    pipeline.log.info("finding states and testing discreteness")
+    res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=jobs, progress=False)
+    bar.update(1)
+    bar.set_description("network fit and comparison")
     pipeline.run_model(res, seed=seed, n_jobs=jobs, progress=progress)
+    bar.update(1)
+    bar.set_description("figures and report")
     summary = pipeline.base_summary(res, seed=seed)
     summary["states"] = res.state_fit.summary_block()
     summary["discreteness"] = res.discreteness.summary_block()
@@ -258,10 +266,11 @@ def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress) -> int:
     pipeline.write_state_outputs(folder, res)
     pipeline.write_model_outputs(folder, res)
     folder.write_text("config.toml", pipeline.dumps_config(cfg))
-    if progress:
-        print("attractorfit: writing figures and report", file=sys.stderr)
+    pipeline.log.info("writing figures and report")
     write_figures_and_report(folder, res)
     folder.write_json("summary.json", summary)
+    bar.update(1)
+    bar.close()
     if not quiet:
         sf, d, c = res.state_fit, res.discreteness, res.comparison.summary_block()
         print(f"{sf.n_states} states, vertex codes {', '.join(sf.vertex_text)}; "

@@ -57,6 +57,14 @@ def main(argv=None) -> int:
         if not getattr(args, "func", None):
             parser.print_help()
             return 2
+        if getattr(args, "verbose", False):
+            import logging
+
+            handler = logging.StreamHandler(sys.stderr)
+            handler.setFormatter(logging.Formatter("attractorfit: %(message)s"))
+            logger = logging.getLogger("attractorfit")
+            logger.addHandler(handler)
+            logger.setLevel(logging.INFO)
         with warnings.catch_warnings():
             warnings.simplefilter("default", InputWarning)
             warnings.formatwarning = _format_warning

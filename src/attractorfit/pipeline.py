@@ -8,6 +8,7 @@ atomically and never into the input's folder unless the user names it.
 from __future__ import annotations
 
 import hashlib
+import logging
 import os
 import platform
 import sys
@@ -20,6 +21,8 @@ import numpy as np
 from attractorfit._output import atomic_writer, write_csv, write_json
 from attractorfit.config import dumps_config, resolve_config
 from attractorfit.errors import InputError
+
+log = logging.getLogger("attractorfit")
 
 __all__ = ["RunFolder", "RunResult", "run_states", "input_record", "versions",
            "categorical_labels", "bin_for_analysis"]
@@ -340,8 +343,8 @@ def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
 
 
 def _note(progress: bool, text: str) -> None:
-    if progress:
-        print(f"attractorfit: {text}", file=sys.stderr)
+    """Log a stage (shown with --verbose)."""
+    log.info(text)
 
 
 def write_model_outputs(folder: RunFolder, result: RunResult) -> None:
