@@ -4,13 +4,15 @@ Scenarios: semi-Markov switching among S = 3 to 8 states (synthetic.switching_re
 gamma dwell times with shape 2, log-rate modulation s.d. 0.6 unless stated), gamma
 renewal spiking of order 2 to 4 (more regular than Poisson), Poisson, and order 0.5
 (over-dispersed, Fano factor about 2), 40 to 100 units, 50 to 100 trials of 3 s, bins of
-20 or 50 ms. Two stress scenarios go beyond the brief (0.15 s dwell; modulation 0.4).
+20 or 50 ms. Stress scenarios go beyond that: 0.1-0.15 s dwell, weaker modulation
+(0.3-0.4), and very bursty spiking (gamma order 0.3, Fano factor about 3).
 Every rule sees candidates 1..10.
 
 Rules (all from :func:`attractorfit.states.choose_n_states`):
   bic, icl, heldout, heldout_1se   plain maximum-likelihood fits (sticky = 0), 5 folds
   sticky=s+bic, sticky=s+icl       MAP fits with the sticky prior s (no folds needed)
-  fast sticky=0.2+bic              the fast path (1 restart, <= 50 iterations)
+  fast default                     the fast path (1 restart, <= 50 iterations) with the
+                                   default rule
 
 Also reports what the default rule chooses on continuous-latent recordings (no discrete
 states exist; this is the discreteness test's business, not a failure here).
@@ -28,6 +30,7 @@ import numpy as np
 
 from attractorfit.binning import bin_spikes
 from attractorfit.states import choose_n_states
+from attractorfit.states._select import DEFAULT_STICKY
 from attractorfit.synthetic import continuous_latent_recording, switching_recording
 
 # name: (n_states, n_units, gamma_order, n_trials, bin_s, mean_dwell_s, modulation)
@@ -42,8 +45,12 @@ SCENARIOS = {
     "S8 N100 g0.5 50ms": (8, 100, 0.5, 100, 0.05, 0.3, 0.6),
     "stress S4 N60 g2 dwell0.15": (4, 60, 2.0, 60, 0.02, 0.15, 0.6),
     "stress S5 N40 g2 mod0.4": (5, 40, 2.0, 80, 0.05, 0.3, 0.4),
+    "stress S5 N60 g0.5 mod0.4 20ms": (5, 60, 0.5, 80, 0.02, 0.3, 0.4),
+    "stress S4 N40 poisson mod0.3": (4, 40, 1.0, 60, 0.05, 0.3, 0.3),
+    "stress S6 N40 g2 dwell0.1 20ms": (6, 40, 2.0, 80, 0.02, 0.1, 0.6),
+    "stress S4 N40 g0.3 50ms": (4, 40, 0.3, 60, 0.05, 0.3, 0.6),
 }
-STICKY = (0.05, 0.2, 1.0)
+STICKY = (0.05, 0.2, DEFAULT_STICKY, 1.0)
 CANDIDATES = range(1, 11)
 
 
@@ -64,10 +71,9 @@ def rule_choices(seqs, seed):
         out[f"sticky={s}+bic"] = c.choices["bic"]
         out[f"sticky={s}+icl"] = c.choices["icl"]
     t = time.perf_counter()
-    c = choose_n_states(seqs, candidates=CANDIDATES, rule="bic", sticky=0.2, fast=True,
-                        rng=seed)
-    times["fast sticky=0.2"] = time.perf_counter() - t
-    out["fast sticky=0.2+bic"] = c.choices["bic"]
+    c = choose_n_states(seqs, candidates=CANDIDATES, fast=True, rng=seed)
+    times["fast (default rule)"] = time.perf_counter() - t
+    out["fast default"] = c.choices[c.rule]
     return out, times
 
 
@@ -128,16 +134,15 @@ def main():
     # continuous latent: no discrete truth; document what the default rule chooses
     print()
     print("continuous 1-D OU latent (tau 0.3 s), 40 units, 60 trials, 50 ms bins, default "
-          "rule (sticky=0.2 + BIC) and plain BIC:")
+          f"rule (sticky={DEFAULT_STICKY} + BIC) and plain BIC:")
     for rep in range(3 if not args.quick else 1):
         rec, _ = continuous_latent_recording(n_units=40, n_latents=1, n_trials=60,
                                              gamma_order=2.0, rng=50 + rep)
         seqs = bin_spikes(rec, bin_size=0.05).sequences()
-        c = choose_n_states(seqs, candidates=CANDIDATES, rule="bic", sticky=0.2,
-                            n_folds=None, rng=rep)
+        c = choose_n_states(seqs, candidates=CANDIDATES, n_folds=None, rng=rep)
         c0 = choose_n_states(seqs, candidates=CANDIDATES, rule="bic", sticky=0.0,
                              n_folds=None, rng=rep)
-        print(f"  rep {rep}: sticky=0.2+bic chose {c.chosen}, plain bic chose {c0.chosen}")
+        print(f"  rep {rep}: default chose {c.chosen}, plain bic chose {c0.chosen}")
 
     timing()
 

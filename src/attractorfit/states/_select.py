@@ -76,7 +76,7 @@ __all__ = ["StateCountChoice", "choose_n_states", "RULES"]
 RULES = ("bic", "icl", "heldout", "heldout_1se")
 _NEEDS_FOLDS = ("heldout", "heldout_1se")
 #: Default sticky prior of :func:`choose_n_states` (see the module docstring).
-DEFAULT_STICKY = 0.2
+DEFAULT_STICKY = 0.35
 
 
 def _trial_folds(n_trials: int, n_folds, rng) -> list:
