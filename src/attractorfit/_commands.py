@@ -200,13 +200,20 @@ def _defaults(args) -> int:
     return 0
 
 
-def _states(args) -> int:
+def _prepare(args):
+    """Configuration, seed, output folder (checked before any work) and the recording."""
     from attractorfit import pipeline
 
     cfg, seed, out = _resolve(args)
     folder = pipeline.RunFolder(out, inputs=[args.path] + ([args.trials] if args.trials else []),
                                 force=args.force)
-    rec = load_from_args(args)
+    return cfg, seed, folder, load_from_args(args)
+
+
+def _states(args) -> int:
+    from attractorfit import pipeline
+
+    cfg, seed, folder, rec = _prepare(args)
     res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=args.jobs,
                               progress=_progress_wanted(args), discreteness=not args.no_test)
     summary = pipeline.base_summary(res, seed=seed)
@@ -229,12 +236,7 @@ def _states(args) -> int:
 
 
 def _run(args) -> int:
-    from attractorfit import pipeline
-
-    cfg, seed, out = _resolve(args)
-    folder = pipeline.RunFolder(out, inputs=[args.path] + ([args.trials] if args.trials else []),
-                                force=args.force)
-    rec = load_from_args(args)
+    cfg, seed, folder, rec = _prepare(args)
     return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
                           progress=not args.quiet)
 
