@@ -63,7 +63,8 @@ def register(sub) -> None:
     p.add_argument("--out", metavar="DIR", default=None,
                    help="folder for the results (default: ./attractorfit_demo)")
     p.add_argument("--seed", type=int, default=None, metavar="N", help="seed (default 0)")
-    p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes")
+    p.add_argument("--jobs", type=int, default=2, metavar="N",
+                   help="workers (default 2; the results do not depend on it)")
     p.add_argument("--quiet", action="store_true", help="no progress bar or summary lines")
     p.add_argument("--verbose", action="store_true", help="log what each stage does")
     p.set_defaults(func=_demo)
