@@ -861,7 +861,11 @@ def _null_text(what, null_words, verdict, p_net, p_null, n_null, n_model, alpha)
     if verdict == "null_better":
         return f"The {null_words} reproduce {what} better than the network ({ps})."
     if verdict == "both_differ":
-        return f"The data's {what} differ from both the network and the {null_words} ({ps})."
+        subject = ("The data, on " + what) if what.startswith("the combined") else \
+            f"The data's {what}"
+        return f"{subject}, differ from both the network and the {null_words} ({ps})." \
+            if what.startswith("the combined") else \
+            f"{subject} differ from both the network and the {null_words} ({ps})."
     if verdict == "inconclusive":
         need = int(math.ceil(1.0 / alpha - 1.0 - 1e-9))
         if not (np.isfinite(p_net) and np.isfinite(p_null)):
