@@ -94,6 +94,19 @@ def test_report_is_self_contained(run_folder):
     assert "http://" not in html and "https://" not in html
 
 
+def test_local_cluster_gives_identical_outputs(run_folder, tmp_path):
+    # the surrogates simulated on a 2-worker Dask LocalCluster (127.0.0.1) must give the
+    # same bytes as the local run of the fixture
+    pytest.importorskip("distributed")
+    d = run_folder.parent
+    out = tmp_path / "dask"
+    code = main(["run", str(d / "rec.nwb"), "--out", str(out), "--config", str(d / "run.toml"),
+                 "--seed", "1", "--quiet", "--local-cluster", "2"])
+    assert code == 0
+    for name in ("summary.json", "states.csv"):
+        assert (out / name).read_bytes() == (run_folder / name).read_bytes()
+
+
 def test_split_trials_stratified():
     class B:
         n_trials = 10

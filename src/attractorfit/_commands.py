@@ -52,6 +52,14 @@ def register(sub) -> None:
                     "config.toml, figures/, tables/, report.html).")
     _add_load_options(p)
     _add_run_options(p)
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--scheduler", metavar="ADDRESS",
+                       help="simulate the network's surrogate recordings on a running Dask "
+                            "cluster (e.g. tcp://10.0.0.5:8786; needs the 'cluster' extra); "
+                            "results are identical to a local run")
+    where.add_argument("--local-cluster", type=int, metavar="N",
+                       help="start a local Dask cluster of N worker processes for the "
+                            "surrogate simulations")
     p.set_defaults(func=_run)
 
     p = sub.add_parser(
@@ -238,11 +246,18 @@ def _states(args) -> int:
 
 def _run(args) -> int:
     cfg, seed, folder, rec = _prepare(args)
+    if args.local_cluster is not None and args.local_cluster < 1:
+        from attractorfit.errors import InputError
+
+        raise InputError(f"--local-cluster: expected a whole number >= 1, got "
+                         f"{args.local_cluster}")
     return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
-                          progress=not args.quiet)
+                          progress=not args.quiet, scheduler=args.scheduler,
+                          local_cluster=args.local_cluster)
 
 
-def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress) -> int:
+def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress, scheduler=None,
+                   local_cluster=None) -> int:
     import time
 
     from attractorfit import pipeline
@@ -258,7 +273,8 @@ def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress) -> int:
     res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=jobs, progress=False)
     bar.update(1)
     bar.set_description("network fit and comparison")
-    pipeline.run_model(res, seed=seed, n_jobs=jobs, progress=progress)
+    pipeline.run_model(res, seed=seed, n_jobs=jobs, progress=progress, scheduler=scheduler,
+                       local_cluster=local_cluster)
     bar.update(1)
     bar.set_description("figures and report")
     summary = pipeline.base_summary(res, seed=seed)

@@ -291,9 +291,20 @@ def split_trials(binned, condition, fraction: float, rng) -> tuple:
     return train, held
 
 
+def _surrogate_task(seed, network_fit):
+    """One fitted-network surrogate (module level: it is sent to workers)."""
+    return network_fit.simulate_recording(rng=np.random.default_rng(seed))
+
+
 def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
-              progress: bool = False) -> RunResult:
+              progress: bool = False, scheduler: str | None = None,
+              local_cluster: int | None = None) -> RunResult:
     """Fit the network, simulate surrogates and nulls, compare model and data.
+
+    With ``scheduler`` (a Dask scheduler address) or ``local_cluster`` (workers of a
+    local Dask cluster) the fitted-network surrogates are simulated there through
+    :func:`attractorfit.sweep.run_parallel`, with the same per-surrogate streams as
+    :func:`~attractorfit.surrogates.network_surrogates`, so the results are identical.
 
     Streams: the fit, the surrogates, the nulls and the comparison each take their
     own child of ``SeedSequence(seed)`` (after the two used by :func:`run_states`), so
@@ -321,8 +332,16 @@ def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
                          train_trials=train, rng=np.random.default_rng(fit_seed),
                          progress=False)
         _note(progress, f"simulating {cp['n_surrogates']} surrogate recordings")
-        sur = network_surrogates(nf, cp["n_surrogates"], rng=np.random.default_rng(sur_seed),
-                                 n_jobs=n_jobs)
+        if scheduler or local_cluster:
+            from attractorfit.surrogates import spawn_streams
+            from attractorfit.sweep import run_parallel
+
+            seeds = spawn_streams(np.random.default_rng(sur_seed), cp["n_surrogates"])
+            sur = run_parallel(_surrogate_task, seeds, shared=nf, scheduler=scheduler,
+                               local_cluster=local_cluster)
+        else:
+            sur = network_surrogates(nf, cp["n_surrogates"],
+                                     rng=np.random.default_rng(sur_seed), n_jobs=n_jobs)
         nulls = {}
         if cp["nulls"]:
             _note(progress, f"simulating null surrogates ({', '.join(cp['nulls'])})")
