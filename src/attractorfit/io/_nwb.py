@@ -320,6 +320,9 @@ def write_nwb(recording: Recording, path, *, session_description: str | None = N
     try:
         with NWBHDF5IO(tmp, mode="w") as io:
             io.write(nwb)
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp, 0o666 & ~mask)  # the permissions a plain open() would give
         os.replace(tmp, path)
     except BaseException:
         try:
