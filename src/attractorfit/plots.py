@@ -629,7 +629,9 @@ def occupancy_bars(occ_data, occ_model=None, ci_model=None, nulls=None, *, ci_da
     ax.set_ylim(0, min(1.0, top * 1.15) if top > 0 else 1.0)
     has_ci = any(s[2] is not None for s in series)
     if len(series) > 1 or has_ci:
-        leg = ax.legend(fontsize=_FS_SMALL, frameon=False,
+        # legend above the axes, in columns, so it never covers bars or error bars
+        leg = ax.legend(fontsize=_FS_SMALL, frameon=False, loc="lower center",
+                        bbox_to_anchor=(0.5, 1.0), ncol=min(len(series), 5),
                         title="error bars: confidence intervals" if has_ci else None,
                         title_fontsize=_FS_SMALL)
         leg.get_title().set_color("#444444")
