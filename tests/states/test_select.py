@@ -119,7 +119,7 @@ def test_one_se_rule_closed_form():
     # total with per-trial differences s.d. 1 over 4 trials (SE = 2): within 1 SE
     per_trial = np.array([[0.0, 0.0, 0.0, 0.0],
                           [9.0, 11.0, 9.0, 11.0],
-                          [10.0, 11.5, 10.5, 10.0]]) 
+                          [10.0, 11.5, 10.5, 10.0]])
     d = per_trial[2] - per_trial[1]
     assert d.sum() == pytest.approx(2.0)
     idx, se = _one_se(per_trial)
