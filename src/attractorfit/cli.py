@@ -38,6 +38,17 @@ def _terminate(signum, frame):  # pragma: no cover - exercised in a subprocess t
     raise KeyboardInterrupt
 
 
+def _ignore_further_signals() -> None:
+    """After the first interrupt, later SIGINT/SIGTERM must not cut the clean exit short."""
+    import signal
+
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        try:
+            signal.signal(sig, signal.SIG_IGN)
+        except ValueError:  # not the main thread
+            pass
+
+
 def main(argv=None) -> int:
     """Run the command line; return the exit status."""
     import signal
@@ -73,7 +84,11 @@ def main(argv=None) -> int:
         print(f"attractorfit: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("attractorfit: interrupted; no partial output was kept", file=sys.stderr)
+        _ignore_further_signals()
+        try:
+            print("attractorfit: interrupted; no partial output was kept", file=sys.stderr)
+        except KeyboardInterrupt:  # pragma: no cover - a second signal while reporting
+            pass
         return 130
     except BrokenPipeError:
         return 0
@@ -84,4 +99,6 @@ def _format_warning(message, category, filename, lineno, line=None):
 
 
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+    code = main()
+    sys.stderr.flush()
+    sys.exit(code)
