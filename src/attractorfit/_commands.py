@@ -121,20 +121,26 @@ def _resolve(args):
     import os
 
     from attractorfit.config import load_config, resolve_config
-    from attractorfit.errors import InputError
 
     cfg = load_config(args.config) if args.config else resolve_config(None)
+    _apply_seed_and_jobs(args, cfg)
+    out = args.out
+    if out is None:
+        stem = os.path.splitext(os.path.basename(os.path.normpath(args.path)))[0]
+        out = os.path.join(os.getcwd(), f"{stem}_attractorfit")
+    return cfg, int(cfg["run"]["seed"]), out
+
+
+def _apply_seed_and_jobs(args, cfg) -> None:
+    """Check --seed and --jobs; a given seed replaces run.seed of the configuration."""
+    from attractorfit.errors import InputError
+
     if args.seed is not None:
         if args.seed < 0:
             raise InputError(f"--seed: expected a whole number >= 0, got {args.seed}")
         cfg["run"]["seed"] = args.seed
     if args.jobs < 1:
         raise InputError(f"--jobs: expected a whole number >= 1, got {args.jobs}")
-    out = args.out
-    if out is None:
-        stem = os.path.splitext(os.path.basename(os.path.normpath(args.path)))[0]
-        out = os.path.join(os.getcwd(), f"{stem}_attractorfit")
-    return cfg, int(cfg["run"]["seed"]), out
 
 
 def _progress_wanted(args) -> bool:
@@ -307,18 +313,12 @@ def _demo(args) -> int:
 
     from attractorfit import pipeline
     from attractorfit.config import load_config
-    from attractorfit.errors import InputError
     from attractorfit.io import load
 
     data = resources.files("attractorfit.sample_data")
     path = str(data / "ports_session.nwb")
     cfg = load_config(str(data / "demo.toml"))
-    if args.seed is not None:
-        if args.seed < 0:
-            raise InputError(f"--seed: expected a whole number >= 0, got {args.seed}")
-        cfg["run"]["seed"] = args.seed
-    if args.jobs < 1:
-        raise InputError(f"--jobs: expected a whole number >= 1, got {args.jobs}")
+    _apply_seed_and_jobs(args, cfg)
     out = args.out or os.path.join(os.getcwd(), "attractorfit_demo")
     folder = pipeline.RunFolder(out, inputs=[path], force=True)
     rec = load(path)

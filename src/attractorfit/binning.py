@@ -14,7 +14,17 @@ from attractorfit._validation import check_nonnegative, check_positive, warn_inp
 from attractorfit.errors import InputError
 from attractorfit.recording import Recording
 
-__all__ = ["BinnedCounts", "bin_spikes", "analysis_windows"]
+__all__ = ["BinnedCounts", "bin_spikes", "analysis_windows", "trial_folds"]
+
+
+def trial_folds(n_trials: int, n_folds: int, rng) -> list:
+    """Random partition of trial indices into ``n_folds`` test sets (sorted arrays).
+
+    One permutation from ``rng``; fold f holds every n_folds-th trial of it from f on.
+    Used wherever cross-validation runs over whole trials (latent space, state count).
+    """
+    order = rng.permutation(n_trials)
+    return [np.sort(order[f::n_folds]) for f in range(n_folds)]
 
 
 @dataclass

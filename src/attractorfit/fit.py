@@ -58,6 +58,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from attractorfit.states._segments import _is_missing
+
 from attractorfit._validation import check_fraction, check_int, check_positive, check_rng
 from attractorfit.binning import BinnedCounts
 from attractorfit.errors import InputError, InputWarning
@@ -633,15 +635,6 @@ def _level_text(v) -> str:
     if isinstance(v, (np.generic,)):
         v = v.item()
     return str(v)
-
-
-def _is_missing(v) -> bool:
-    if v is None:
-        return True
-    try:
-        return isinstance(v, (float, np.floating)) and math.isnan(v)
-    except TypeError:
-        return False
 
 
 def _levels(values) -> list:

@@ -36,6 +36,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from attractorfit.binning import trial_folds
+
 from attractorfit._validation import check_int, check_nonnegative, check_rng
 from attractorfit.errors import InputError
 
@@ -388,11 +390,6 @@ def _loo_unit_error_cov(m2, W, psi, method):
     return total
 
 
-def _folds(n_trials, n_folds, rng):
-    order = rng.permutation(n_trials)
-    return [np.sort(order[f::n_folds]) for f in range(n_folds)]
-
-
 # --------------------------------------------------------------------------- estimator
 class LatentModel:
     """Factor analysis or PCA of square-root spike counts, with chosen dimensionality.
@@ -528,7 +525,7 @@ class LatentModel:
                                  f"cross-validation, got {len(seqs)}")
             kmax = min(int(self.max_dims), n_units - 1)
             dims = np.arange(kmax + 1)
-            folds = _folds(len(seqs), min(int(self.n_folds), len(seqs)), rng)
+            folds = trial_folds(len(seqs), min(int(self.n_folds), len(seqs)), rng)
             cv = np.zeros(dims.size)
             loo = np.zeros(dims.size)
             for test in folds:

@@ -11,8 +11,6 @@ import hashlib
 import logging
 import os
 import platform
-import sys
-import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
@@ -188,9 +186,7 @@ def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int
     from attractorfit.states import analyse_states, discreteness_test
 
     cfg = resolve_config(cfg) if cfg is None or "run" not in cfg else cfg
-    rng = np.random.default_rng(np.random.SeedSequence(seed))
     state_seed, disc_seed = np.random.SeedSequence(seed).spawn(2)
-    del rng
     with _deterministic_threads():
         binned = bin_for_analysis(recording, cfg)
         cond = _condition_column(binned, cfg)
@@ -248,16 +244,6 @@ def write_state_outputs(folder: RunFolder, result: RunResult) -> None:
                      window_start=b.window_start,
                      vertices=sf.vertices.astype(np.int8))
 
-
-def print_progress_note(message: str, *, quiet: bool) -> None:
-    if not quiet:
-        print(message, file=sys.stderr)
-
-
-def suppress_library_warnings():
-    """Hide third-party deprecation chatter during a run (our own warnings stay)."""
-    warnings.filterwarnings("ignore", category=DeprecationWarning)
-    warnings.filterwarnings("ignore", category=FutureWarning)
 
 
 def split_trials(binned, condition, fraction: float, rng) -> tuple:

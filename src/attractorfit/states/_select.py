@@ -71,6 +71,8 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+
+from attractorfit.binning import trial_folds
 from sklearn.exceptions import ConvergenceWarning
 
 from attractorfit._validation import check_int, check_nonnegative, check_rng
@@ -96,8 +98,7 @@ def _trial_folds(n_trials: int, n_folds, rng) -> list:
     if n_folds > n_trials:
         raise InputError(f"n_folds: {n_folds} folds need at least {n_folds} trials, got "
                          f"{n_trials}")
-    perm = rng.permutation(n_trials)
-    return [np.sort(perm[f::n_folds]) for f in range(n_folds)]
+    return trial_folds(n_trials, n_folds, rng)
 
 
 def _heldout_per_trial(data, folds, make_model, seed) -> np.ndarray:
