@@ -34,7 +34,18 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _terminate(signum, frame):  # pragma: no cover - exercised in a subprocess test
+_INTERRUPTED = False
+
+
+def _interrupt(signum, frame):  # pragma: no cover - exercised in a subprocess test
+    """SIGINT/SIGTERM: remember it, then unwind like Ctrl-C so atomic writers clean up.
+
+    The flag matters because the KeyboardInterrupt can surface wrapped in another
+    exception (a numba callback turns it into SystemError) or be swallowed by a
+    C callback; ``main`` trusts the flag, not the exception type.
+    """
+    global _INTERRUPTED
+    _INTERRUPTED = True
     raise KeyboardInterrupt
 
 
@@ -53,10 +64,23 @@ def main(argv=None) -> int:
     """Run the command line; return the exit status."""
     import signal
 
+    global _INTERRUPTED
+    _INTERRUPTED = False
+    previous = {}
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        try:
+            previous[sig] = signal.signal(sig, _interrupt)
+        except ValueError:  # not the main thread (e.g. called from a test runner thread)
+            pass
     try:
-        signal.signal(signal.SIGTERM, _terminate)  # SIGTERM unwinds like Ctrl-C
-    except ValueError:  # not the main thread (e.g. called from a test runner thread)
-        pass
+        return _main(argv)
+    finally:
+        if not _INTERRUPTED:  # after an interrupt, further signals stay ignored until exit
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+
+
+def _main(argv) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
@@ -79,19 +103,54 @@ def main(argv=None) -> int:
         with warnings.catch_warnings():
             warnings.simplefilter("default", InputWarning)
             warnings.formatwarning = _format_warning
-            return int(args.func(args) or 0)
+            code = int(args.func(args) or 0)
+        if _INTERRUPTED:  # pragma: no cover - timing dependent
+            print("attractorfit: an interrupt arrived inside a compiled-code callback and was "
+                  "lost; the command finished and its outputs are complete", file=sys.stderr)
+        return code
     except InputError as exc:
+        if _INTERRUPTED:
+            return _interrupted()
         print(f"attractorfit: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        _ignore_further_signals()
-        try:
-            print("attractorfit: interrupted; no partial output was kept", file=sys.stderr)
-        except KeyboardInterrupt:  # pragma: no cover - a second signal while reporting
-            pass
-        return 130
+        return _interrupted()
     except BrokenPipeError:
         return 0
+    except BaseException:
+        if _INTERRUPTED:  # the interrupt surfaced wrapped in another exception
+            return _interrupted()
+        raise
+
+
+def _interrupted() -> int:
+    _ignore_further_signals()
+    try:
+        print("attractorfit: interrupted; no partial output was kept", file=sys.stderr)
+    except KeyboardInterrupt:  # pragma: no cover - a second signal while reporting
+        pass
+    return 130
+
+
+def run() -> None:
+    """Console-script entry: ``main`` then exit with its status.
+
+    After an interrupt the process leaves through ``os._exit(130)``: CPython marks a
+    KeyboardInterrupt that passed through ``exec`` of a string (dataclasses do that
+    while a module is imported) as unhandled even when ``main`` caught it, and would
+    then kill itself with SIGINT at shutdown instead of returning 130.
+    """
+    import os
+
+    code = main()
+    try:
+        sys.stdout.flush()
+        sys.stderr.flush()
+    except (OSError, ValueError):  # pragma: no cover - closed or broken pipe
+        pass
+    if code == 130:
+        os._exit(130)
+    sys.exit(code)
 
 
 def _format_warning(message, category, filename, lineno, line=None):
@@ -99,6 +158,4 @@ def _format_warning(message, category, filename, lineno, line=None):
 
 
 if __name__ == "__main__":  # pragma: no cover
-    code = main()
-    sys.stderr.flush()
-    sys.exit(code)
+    run()
