@@ -22,38 +22,19 @@ import warnings
 
 import numpy as np
 
-from attractorfit.binning import BinnedCounts, bin_spikes
+from attractorfit.binning import bin_spikes
 from attractorfit.compare import compare
 from attractorfit.errors import InputWarning
 from attractorfit.states import analyse_states
 from attractorfit.synthetic import state_rate_vectors, switching_recording
+from attractorfit.synthetic import switching_counts as _switching_counts
 
 DT = 0.02
 
 
-def switching_counts(rates_hz, *, seed, n_trials, n_bins, mean_dwell_s=0.4, transmat=None,
-                     start=None):
-    rng = np.random.default_rng(seed)
-    n_states, n_units = rates_hz.shape
-    tm = np.ones((n_states, n_states)) if transmat is None else np.array(transmat, float)
-    np.fill_diagonal(tm, 0.0)
-    tm /= tm.sum(axis=1, keepdims=True)
-    start = np.arange(n_trials) % n_states if start is None else start
-    counts = np.zeros((n_trials, n_bins, n_units), dtype=np.uint16)
-    for k in range(n_trials):
-        lab = np.empty(n_bins, dtype=np.int64)
-        t, s = 0, int(start[k])
-        while t < n_bins:
-            d = max(1, int(round(rng.gamma(2.0, mean_dwell_s / DT / 2.0))))
-            lab[t:t + d] = s
-            t += d
-            s = int(rng.choice(n_states, p=tm[s]))
-        counts[k] = rng.poisson(rates_hz[lab] * DT)
-    return BinnedCounts(counts=counts, n_valid=np.full(n_trials, n_bins), bin_size=DT,
-                        unit_ids=[str(i) for i in range(n_units)],
-                        unit_index=np.arange(n_units), trial_index=np.arange(n_trials),
-                        window_start=np.arange(n_trials) * (n_bins * DT + 1.0),
-                        labels={"item": np.array([str(i) for i in start])})
+def switching_counts(rates_hz, *, seed, n_trials, n_bins, **kw):
+    return _switching_counts(rates_hz, n_trials=n_trials, n_bins=n_bins, bin_size=DT,
+                             rng=seed, **kw)
 
 
 def run_scenarios(n_datasets):

@@ -118,6 +118,63 @@ def state_rate_vectors(n_states: int, n_units: int, *, rate_range=(2.0, 25.0),
     return base[None, :] * np.exp(modulation * z)
 
 
+def switching_counts(rates_hz, *, n_trials: int, n_bins: int, bin_size: float = 0.02,
+                     mean_dwell_s: float = 0.4, transmat=None, start=None,
+                     level_names=None, rng=None):
+    """Binned counts of a semi-Markov switching process, without spike times.
+
+    A cheap count-level stand-in for :func:`switching_recording` when only
+    :class:`~attractorfit.binning.BinnedCounts` are needed: each trial starts in
+    ``start[k]`` (default ``k mod S``), dwells are gamma (shape 2, mean
+    ``mean_dwell_s``, rounded to whole bins, at least one), the next state is drawn
+    from ``transmat`` (diagonal ignored; default uniform over the other states), and
+    counts are Poisson with mean ``rates_hz[state] * bin_size``.
+
+    Parameters
+    ----------
+    rates_hz : ndarray (S, N)
+    n_trials, n_bins : int
+    bin_size : float
+        Seconds per bin.
+    mean_dwell_s : float
+    transmat : array_like (S, S), optional
+    start : array_like of int (n_trials,), optional
+    level_names : str or sequence, optional
+        Name of each starting state in the ``item`` label (default ``str(state)``).
+    rng : None, int or Generator
+
+    Returns
+    -------
+    BinnedCounts
+        With label ``item`` = the starting state's name.
+    """
+    from attractorfit.binning import BinnedCounts
+
+    rng = check_rng(rng)
+    rates_hz = np.asarray(rates_hz, dtype=float)
+    n_states, n_units = rates_hz.shape
+    tm = np.ones((n_states, n_states)) if transmat is None else np.array(transmat, float)
+    np.fill_diagonal(tm, 0.0)
+    tm /= tm.sum(axis=1, keepdims=True)
+    start = np.arange(n_trials) % n_states if start is None else np.asarray(start)
+    names = [str(i) for i in range(n_states)] if level_names is None else list(level_names)
+    counts = np.zeros((n_trials, n_bins, n_units), dtype=np.uint16)
+    for k in range(n_trials):
+        lab = np.empty(n_bins, dtype=np.int64)
+        t, s = 0, int(start[k])
+        while t < n_bins:
+            d = max(1, int(round(rng.gamma(2.0, mean_dwell_s / bin_size / 2.0))))
+            lab[t:t + d] = s
+            t += d
+            s = int(rng.choice(n_states, p=tm[s]))
+        counts[k] = rng.poisson(rates_hz[lab] * bin_size)
+    return BinnedCounts(counts=counts, n_valid=np.full(n_trials, n_bins), bin_size=bin_size,
+                        unit_ids=[str(i) for i in range(n_units)],
+                        unit_index=np.arange(n_units), trial_index=np.arange(n_trials),
+                        window_start=np.arange(n_trials) * (n_bins * bin_size + 1.0),
+                        labels={"item": np.array([names[i] for i in start])})
+
+
 def _semi_markov(duration, start_state, n_states, mean_dwell_s, dwell_shape, transmat, rng):
     times, states = [0.0], [start_state]
     t, s = 0.0, start_state
