@@ -234,6 +234,36 @@ def test_bootstrap_replicate_resamples_trials(inputs, tmp_path):
     assert r0["loglik"] == pytest.approx(stats.poisson.logpmf(x0, x0.mean(0)).sum(), rel=1e-8)
 
 
+def test_bootstrap_intervals_by_hand():
+    """Quantiles with linear interpolation worked by hand (type 7, Hyndman & Fan 1996)."""
+    from attractorfit.sweep import bootstrap_intervals
+
+    base = {"input": "a", "n_states": 2, "dims": None, "rule": None, "error": None}
+    rows = [dict(base, replicate=0, cube_r2=0.5)]
+    rows += [dict(base, replicate=b, cube_r2=v) for b, v in enumerate([4, 1, 5, 2, 3], 1)]
+    rows.append(dict(base, replicate=6, cube_r2=None))  # failed replicate: left out
+    (r,) = [x for x in bootstrap_intervals(rows, level=0.5) if x["quantity"] == "cube_r2"]
+    assert (r["recorded"], r["low"], r["median"], r["high"], r["n_replicates"]) == \
+        (0.5, 2.0, 3.0, 4.0, 5)
+    # 90%: positions 0.05 * 4 = 0.2 and 0.95 * 4 = 3.8 between sorted values 1..5
+    (r,) = [x for x in bootstrap_intervals(rows, level=0.9) if x["quantity"] == "cube_r2"]
+    assert r["low"] == pytest.approx(1.2) and r["high"] == pytest.approx(4.8)
+    assert bootstrap_intervals([dict(base, replicate=None, cube_r2=1.0)]) == []
+
+
+def test_bootstrap_sweep_writes_intervals(inputs, tmp_path):
+    import csv
+
+    res = run_sweep(inputs[:1], states="1:1", out=tmp_path / "boot", seed=3, bootstrap=2)
+    with open(tmp_path / "boot" / "bootstrap_intervals.csv") as fh:
+        table = list(csv.DictReader(fh))
+    row = next(r for r in table if r["quantity"] == "heldout_per_bin")
+    vals = sorted(r["heldout_per_bin"] for r in res.rows if r["replicate"] >= 1)
+    assert float(row["recorded"]) == pytest.approx(res.rows[0]["heldout_per_bin"], rel=1e-9)
+    assert float(row["low"]) == pytest.approx(vals[0] + 0.025 * (vals[1] - vals[0]), rel=1e-8)
+    assert row["n_replicates"] == "2"
+
+
 # --------------------------------------------------------------------------- parallel
 def test_serial_joblib_and_local_cluster_identical(serial, inputs, tmp_path):
     res, out = serial
@@ -428,8 +458,10 @@ def test_rules_add_network_fit_and_comparison(inputs, tmp_path):
     one, two = res.rows
     assert one["error"] is None and one["fit_loss"] is None and one["occupancy_tvd"] is None
     assert two["error"] is None
-    for col in ("fit_loss", "tau_s", "occupancy_tvd", "occupancy_tvd_ref95", "rate_r2_ref05"):
+    for col in ("fit_loss", "tau_s", "noise", "min_margin", "occupancy_tvd",
+                "occupancy_tvd_ref95", "rate_r2_ref05"):
         assert isinstance(two[col], float), col
+    assert two["n_unstable"] in (0, 1, 2)
     assert 0.0 <= two["occupancy_tvd"] <= 1.0  # a total variation distance
     assert 0.01 <= two["tau_s"] <= 0.3  # inside the searched range (config defaults)
     doc = json.loads((tmp_path / "net" / "tasks" / "rec0.npz_s2_pseudoinverse.json")

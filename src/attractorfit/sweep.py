@@ -113,15 +113,22 @@ MAX_STATES = 64
 MAX_DIMS = 8
 
 #: Columns of sweep.csv (network columns are empty without --rules).
-NETWORK_COLUMNS = ["fit_loss", "tau_s", "occupancy_tvd", "occupancy_tvd_ref95", "rate_r2",
-                   "rate_r2_ref05"]
+NETWORK_COLUMNS = ["fit_loss", "tau_s", "noise", "min_margin", "n_unstable", "occupancy_tvd",
+                   "occupancy_tvd_ref95", "rate_r2", "rate_r2_ref05"]
 TABLE_COLUMNS = (["input", "n_states", "dims", "rule", "replicate", "n_trials", "n_units",
                   "n_bins", "latent_dims", "code_dims", "loglik", "bic", "heldout_per_bin",
                   "chosen_bic", "chosen_heldout", "cube_r2", "unassigned_fraction"]
                  + NETWORK_COLUMNS + ["error"])
 
 #: Entries a sweep folder may hold (anything else: not ours to write into).
-_SWEEP_FILES = ("sweep.csv", "tasks", "config.toml")
+_SWEEP_FILES = ("sweep.csv", "tasks", "config.toml", "bootstrap_intervals.csv")
+
+#: Quantities summarised over bootstrap replicates in ``bootstrap_intervals.csv``.
+INTERVAL_QUANTITIES = ["heldout_per_bin", "cube_r2", "unassigned_fraction", "fit_loss",
+                       "tau_s", "noise", "min_margin", "n_unstable", "occupancy_tvd",
+                       "rate_r2"]
+INTERVAL_COLUMNS = ["input", "n_states", "dims", "rule", "quantity", "recorded", "low",
+                    "median", "high", "n_replicates"]
 
 
 # --------------------------------------------------------------------------- options
@@ -703,7 +710,10 @@ def _network_part(task, binned, original, orig, recording, sf, seed, settings):
                   trials=held if held.size else None, refit=False, condition=cond,
                   n_boot=cp["n_boot"], rng=np.random.default_rng(cmp_seed))
     block = cmp.summary_block()
-    row = {"fit_loss": float(net.loss), "tau_s": float(net.tau_s),
+    margins = np.asarray(net.margins, dtype=float)
+    row = {"fit_loss": float(net.loss), "tau_s": float(net.tau_s), "noise": float(net.noise),
+           "min_margin": float(np.min(margins)) if margins.size else None,
+           "n_unstable": len(net.unstable_vertices),
            "occupancy_tvd": block.get("occupancy_tvd"),
            "occupancy_tvd_ref95": block.get("occupancy_tvd_ref95"),
            "rate_r2": block.get("rate_r2"), "rate_r2_ref05": block.get("rate_r2_ref05")}
@@ -1005,12 +1015,68 @@ def run_sweep(paths, *, states, out, dims=None, rules=None, bootstrap: int = 0,
     rows = _table_rows(tasks, docs)
     write_csv(os.path.join(out, "sweep.csv"), TABLE_COLUMNS,
               [[r[c] for c in TABLE_COLUMNS] for r in rows])
+    if bootstrap:
+        write_csv(os.path.join(out, "bootstrap_intervals.csv"), INTERVAL_COLUMNS,
+                  [[r[c] for c in INTERVAL_COLUMNS] for r in bootstrap_intervals(rows)])
     atomic_write(os.path.join(out, "config.toml"), dumps_config(cfg))
     failed = [(t.key, docs[t]["error"]) for t in tasks if docs[t].get("error")]
     for key, err in failed:
         _note(f"note: task {key} failed: {err}", notes)
     return SweepResult(folder=out, tasks=tasks, rows=rows, n_run=len(todo),
                        n_skipped=n_skipped, failed=failed, left_out=left_out)
+
+
+def bootstrap_intervals(rows, *, level: float = 0.95) -> list:
+    """Percentile bootstrap intervals over the replicates of each fit.
+
+    For every (input, states, dims, rule) and every quantity of
+    :data:`INTERVAL_QUANTITIES`: the value on the data as recorded (replicate 0), and
+    the ``(1 - level) / 2``, 0.5 and ``(1 + level) / 2`` quantiles of the same quantity
+    over the replicates that resample trials (replicates >= 1, failed or missing
+    values left out) -- the percentile interval [1]_. It describes how much the fit
+    would move with another set of trials of the same session, not a confidence
+    interval for a brain.
+
+    Parameters
+    ----------
+    rows : list of dict
+        Rows of ``sweep.csv`` (:attr:`SweepResult.rows`).
+    level : float
+        Coverage of the interval.
+
+    Returns
+    -------
+    list of dict
+        Keys :data:`INTERVAL_COLUMNS`; groups without replicates are left out.
+
+    References
+    ----------
+    .. [1] Efron B, Tibshirani RJ (1993). An Introduction to the Bootstrap. Chapman &
+       Hall, ch. 13.
+    """
+    groups = {}
+    for r in rows:
+        if r.get("replicate") is None:
+            continue
+        key = (r["input"], r["n_states"], r["dims"], r["rule"])
+        groups.setdefault(key, []).append(r)
+    lo_q, hi_q = (1.0 - level) / 2.0, (1.0 + level) / 2.0
+    out = []
+    for key in sorted(groups, key=lambda k: tuple("" if v is None else f"{v!s:>12}"
+                                                   for v in k)):
+        members = groups[key]
+        recorded = next((m for m in members if m["replicate"] == 0), {})
+        for q in INTERVAL_QUANTITIES:
+            vals = np.array([float(m[q]) for m in members
+                             if m["replicate"] >= 1 and m.get(q) is not None
+                             and not m.get("error")], dtype=float)
+            vals = vals[np.isfinite(vals)]
+            if vals.size == 0:
+                continue
+            low, med, high = np.quantile(vals, [lo_q, 0.5, hi_q])
+            out.append(dict(zip(INTERVAL_COLUMNS, [*key, q, recorded.get(q), float(low),
+                                                   float(med), float(high), int(vals.size)])))
+    return out
 
 
 def _table_rows(tasks, docs) -> list:
@@ -1073,7 +1139,9 @@ def add_sweep_command(sub) -> None:
                         "held-out ones (compare.held_out_fraction, default half)")
     p.add_argument("--bootstrap", type=int, default=0, metavar="N",
                    help="also N replicates that resample trials with replacement "
-                        "(replicate 0 is the data as recorded)")
+                        "(replicate 0 is the data as recorded); writes "
+                        "DIR/bootstrap_intervals.csv: 95%% percentile intervals of the "
+                        "state and network quantities over the replicates")
     p.add_argument("--out", required=True, metavar="DIR",
                    help="output folder (an earlier sweep there is resumed)")
     where = p.add_mutually_exclusive_group()
