@@ -32,7 +32,8 @@ def register(sub) -> None:
                     "Markov model, give every state a vertex code, decode segments, "
                     "occupancy and dwell times, and test whether discrete states describe "
                     "the activity better than a continuous latent. Writes states.csv, "
-                    "posteriors.npz, summary.json and config.toml into --out.")
+                    "posteriors.npz, state_model.npz, summary.json and config.toml into "
+                    "--out; 'fit', 'simulate', 'compare' and 'report' continue from there.")
     _add_load_options(p)
     _add_run_options(p)
     p.add_argument("--no-test", action="store_true",
@@ -49,17 +50,12 @@ def register(sub) -> None:
                     "recordings from it and from null models, the model-vs-data comparison on "
                     "held-out trials, figures and report.html. Writes the run folder "
                     "(summary.json, states.csv, posteriors.npz, model.npz, surrogate.nwb, "
-                    "config.toml, figures/, tables/, report.html).")
+                    "config.toml, figures/, tables/, report.html, and for the stage "
+                    "commands and --resume: state_model.npz, discreteness.npz, "
+                    "comparison.npz, input.json).")
     _add_load_options(p)
     _add_run_options(p)
-    where = p.add_mutually_exclusive_group()
-    where.add_argument("--scheduler", metavar="ADDRESS",
-                       help="simulate the network's surrogate recordings on a running Dask "
-                            "cluster (e.g. tcp://10.0.0.5:8786; needs the 'cluster' extra); "
-                            "results are identical to a local run")
-    where.add_argument("--local-cluster", type=int, metavar="N",
-                       help="start a local Dask cluster of N worker processes for the "
-                            "surrogate simulations")
+    _add_cluster_options(p)
     p.add_argument("--resume", action="store_true",
                    help="continue an earlier, possibly interrupted run in --out of the same "
                         "input, configuration and seed: stages whose results are complete "
@@ -155,7 +151,8 @@ def _add_cluster_options(p) -> None:
     where = p.add_mutually_exclusive_group()
     where.add_argument("--scheduler", metavar="ADDRESS",
                        help="simulate the network's surrogate recordings on a running Dask "
-                            "cluster (needs the 'cluster' extra); results are identical")
+                            "cluster (e.g. tcp://10.0.0.5:8786; needs the 'cluster' extra); "
+                            "results are identical to a local run")
     where.add_argument("--local-cluster", type=int, metavar="N",
                        help="start a local Dask cluster of N worker processes for the "
                             "surrogate simulations")
@@ -340,15 +337,19 @@ def _states(args) -> int:
 
 def _run(args) -> int:
     cfg, seed, folder, rec = _prepare(args)
+    _check_cluster(args)
+    return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
+                          progress=not args.quiet, scheduler=args.scheduler,
+                          local_cluster=args.local_cluster, resume=args.resume,
+                          input_path=args.path, load_options=_load_options(args))
+
+
+def _check_cluster(args) -> None:
     if args.local_cluster is not None and args.local_cluster < 1:
         from attractorfit.errors import InputError
 
         raise InputError(f"--local-cluster: expected a whole number >= 1, got "
                          f"{args.local_cluster}")
-    return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
-                          progress=not args.quiet, scheduler=args.scheduler,
-                          local_cluster=args.local_cluster, resume=args.resume,
-                          input_path=args.path, load_options=_load_options(args))
 
 
 def _start_fresh(folder, cfg, input_path, load_options, rec) -> None:
@@ -513,11 +514,7 @@ def _compare(args) -> int:
     from attractorfit._figures import write_figures_and_report
 
     folder, cfg, seed = _stage_start(args, "compare")
-    if args.local_cluster is not None and args.local_cluster < 1:
-        from attractorfit.errors import InputError
-
-        raise InputError(f"--local-cluster: expected a whole number >= 1, got "
-                         f"{args.local_cluster}")
+    _check_cluster(args)
     res = _stage_data(args, folder, cfg, "compare", upto="fit")
     pipeline.simulate_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet,
                             scheduler=args.scheduler, local_cluster=args.local_cluster)

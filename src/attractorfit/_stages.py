@@ -78,6 +78,10 @@ def pack_result(obj) -> dict:
     arrays = {}
 
     def enc(x):
+        if isinstance(x, np.generic):  # before float: np.float64 is a float subclass
+            key = f"a{len(arrays)}"
+            arrays[key] = np.asarray(x)
+            return {"s": key}
         if x is None or isinstance(x, (bool, str, int, float)):
             return x
         if isinstance(x, np.ndarray):
@@ -86,10 +90,6 @@ def pack_result(obj) -> dict:
             key = f"a{len(arrays)}"
             arrays[key] = x
             return {"a": key}
-        if isinstance(x, np.generic):
-            key = f"a{len(arrays)}"
-            arrays[key] = np.asarray(x)
-            return {"s": key}
         if isinstance(x, list):
             return {"list": [enc(v) for v in x]}
         if isinstance(x, tuple):
@@ -335,6 +335,9 @@ def check_resume(folder, cfg: dict, seed: int, recording) -> bool:
     if os.path.exists(info_path):
         with open(info_path, encoding="utf-8") as fh:
             _check_same_input(recording, json.load(fh), info_path)
+    recorded = read_summary(folder).get("input")
+    if recorded:
+        _check_same_input(recording, recorded, os.path.join(folder.path, "summary.json"))
     return True
 
 

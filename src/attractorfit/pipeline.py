@@ -1,6 +1,7 @@
 """The stages chained with one configuration, and the run folder.
 
-This module and ``io/`` are the only places that touch disk. Each stage takes the
+This module, :mod:`attractorfit._stages` (the stages on a run folder, ``--resume``)
+and ``io/`` are the only places that touch disk. Each stage takes the
 result dataclass of the stage before; :class:`RunFolder` writes every file
 atomically and never into the input's folder unless the user names it.
 """
@@ -427,12 +428,3 @@ def compare_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
 def _note(progress: bool, text: str) -> None:
     """Log a stage (shown with --verbose)."""
     log.info(text)
-
-
-def write_model_outputs(folder: RunFolder, result: RunResult) -> None:
-    """model.npz and surrogate.nwb of a fitted network."""
-    from attractorfit.io import write_nwb
-
-    arrays = result.network_fit.to_arrays()
-    folder.write_npz("model.npz", **arrays)
-    write_nwb(result.surrogates[0], folder.file("surrogate.nwb"))
