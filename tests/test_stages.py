@@ -189,6 +189,8 @@ def test_stage_commands_check_the_input(full, tmp_path, capsys):
     ("compare", "model.npz", "make it with 'attractorfit fit'"),
     ("report", "surrogate.nwb", "make it with 'attractorfit simulate'"),
     ("fit", "config.toml", "config.toml: not found"),
+    ("fit", "input.json", "input.json: not found; 'fit' needs it; make it with "
+                          "'attractorfit states'"),
 ])
 def test_missing_upstream_file_exits_2(full, tmp_path, capsys, command, remove, match):
     out = tmp_path / "r"

@@ -115,7 +115,8 @@ def _register_stage_commands(sub) -> None:
                     "the held-out trials of the data (occupancy, dwell times, transitions, "
                     "unit rates, variability), each statistic judged against the spread "
                     "between independent model surrogates. Writes comparison.npz, the "
-                    "'comparison' block of summary.json and report.html.")
+                    "'comparison' block of summary.json and report.html (and "
+                    "surrogate.nwb when 'simulate' has not written it).")
     _add_stage_options(p)
     _add_cluster_options(p)
     p.set_defaults(func=_compare)
@@ -313,9 +314,7 @@ def _prepare(args):
 
 
 def _states(args) -> int:
-    from attractorfit import pipeline
-
-    from attractorfit import _stages
+    from attractorfit import _stages, pipeline
 
     cfg, seed, folder, rec = _prepare(args)
     _start_fresh(folder, cfg, args.path, _load_options(args), rec)
@@ -475,7 +474,8 @@ def _stage_data(args, folder, cfg, command, *, upto="states"):
     _stages.need(folder, _stages.MARKERS["states"], "states", command)
     if upto == "fit":
         _stages.need(folder, _stages.MARKERS["fit"], "fit", command)
-    rec = _stages.reload_recording(folder, path=args.input, trials=args.trials)
+    rec = _stages.reload_recording(folder, path=args.input, trials=args.trials,
+                                   command=command)
     res = _stages.restore_states(folder, rec, cfg, command=command)
     if upto == "fit":
         _stages.restore_fit(folder, res, command=command)
@@ -519,6 +519,7 @@ def _compare(args) -> int:
     pipeline.simulate_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet,
                             scheduler=args.scheduler, local_cluster=args.local_cluster)
     pipeline.compare_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet)
+    _stages.save_surrogate(folder, res, if_missing=True)  # what 'simulate' would write
     _stages.save_comparison(folder, res)
     write_figures_and_report(folder, res)
     if not args.quiet:

@@ -240,13 +240,13 @@ def write_input_record(folder, path, options: dict, recording) -> None:
                                    "files": files, "sha256": rec["sha256"]})
 
 
-def _read_input(folder) -> dict:
-    need(folder, INPUT_FILE, "states", "re-reading the input")
+def _read_input(folder, command) -> dict:
+    need(folder, INPUT_FILE, "states", command)
     with open(folder.file(INPUT_FILE), encoding="utf-8") as fh:
         return json.load(fh)
 
 
-def reload_recording(folder, *, path=None, trials=None):
+def reload_recording(folder, *, path=None, trials=None, command: str = "run"):
     """The run's recording, re-read from the recorded input with its load options.
 
     Parameters
@@ -255,6 +255,8 @@ def reload_recording(folder, *, path=None, trials=None):
     path, trials : str, optional
         New locations of an input (or trials table) that moved; the files must still
         have the recorded SHA-256.
+    command : str
+        The command asking (named in the error when input.json is missing).
 
     Raises
     ------
@@ -264,7 +266,7 @@ def reload_recording(folder, *, path=None, trials=None):
     from attractorfit.io import load
     from attractorfit.recording import file_provenance
 
-    info = _read_input(folder)
+    info = _read_input(folder, command)
     opts = dict(info.get("options", {}))
     if trials is not None:
         opts["trials"] = trials
@@ -425,8 +427,10 @@ def save_fit(folder, result) -> None:
     folder.write_npz(MARKERS["fit"], **result.network_fit.to_arrays())
 
 
-def save_surrogate(folder, result) -> None:
-    """surrogate.nwb: the first fitted-network surrogate."""
+def save_surrogate(folder, result, *, if_missing: bool = False) -> None:
+    """surrogate.nwb: the first fitted-network surrogate (``if_missing``: keep one)."""
+    if if_missing and os.path.exists(folder.file(MARKERS["simulate"])):
+        return
     from attractorfit.io import write_nwb
 
     write_nwb(result.surrogates[0], folder.file(MARKERS["simulate"]))
