@@ -254,3 +254,20 @@ def test_pack_result_round_trip_and_refusals(full):
         "attractorfit.states._segments", "os"))
     with pytest.raises(InputError, match="is not ours"):
         _stages.unpack_result(bad)
+
+
+def test_state_fit_round_trip_with_given_states_and_mapping():
+    from attractorfit.binning import bin_spikes
+    from attractorfit.states import analyse_states
+
+    binned = pipeline.analysed_counts(bin_spikes(_recording(5), bin_size=0.05))
+    sf = analyse_states(binned, n_states=2, latent_dims=2, label_to_state={"item": {"a": 1}},
+                        rng=0)
+    assert sf.choice is None and not sf.conditions["item"].mapping_inferred
+    again = StateFit.from_arrays(sf.to_arrays(), binned)
+    assert again.choice is None and not again.conditions["item"].mapping_inferred
+    assert again.label_to_state == sf.label_to_state
+    assert dumps_json(again.summary_block()) == dumps_json(sf.summary_block())
+    sur = pipeline.analysed_counts(bin_spikes(_recording(6), bin_size=0.05))
+    a, b = sf.decode(sur), again.decode(sur)
+    assert np.array_equal(a.occupancy, b.occupancy) and a.segments.rows() == b.segments.rows()
