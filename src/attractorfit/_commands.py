@@ -32,7 +32,8 @@ def register(sub) -> None:
                     "Markov model, give every state a vertex code, decode segments, "
                     "occupancy and dwell times, and test whether discrete states describe "
                     "the activity better than a continuous latent. Writes states.csv, "
-                    "posteriors.npz, summary.json and config.toml into --out.")
+                    "posteriors.npz, state_model.npz, summary.json and config.toml into "
+                    "--out; 'fit', 'simulate', 'compare' and 'report' continue from there.")
     _add_load_options(p)
     _add_run_options(p)
     p.add_argument("--no-test", action="store_true",
@@ -49,18 +50,20 @@ def register(sub) -> None:
                     "recordings from it and from null models, the model-vs-data comparison on "
                     "held-out trials, figures and report.html. Writes the run folder "
                     "(summary.json, states.csv, posteriors.npz, model.npz, surrogate.nwb, "
-                    "config.toml, figures/, tables/, report.html).")
+                    "config.toml, figures/, tables/, report.html, and for the stage "
+                    "commands and --resume: state_model.npz, discreteness.npz, "
+                    "comparison.npz, input.json).")
     _add_load_options(p)
     _add_run_options(p)
-    where = p.add_mutually_exclusive_group()
-    where.add_argument("--scheduler", metavar="ADDRESS",
-                       help="simulate the network's surrogate recordings on a running Dask "
-                            "cluster (e.g. tcp://10.0.0.5:8786; needs the 'cluster' extra); "
-                            "results are identical to a local run")
-    where.add_argument("--local-cluster", type=int, metavar="N",
-                       help="start a local Dask cluster of N worker processes for the "
-                            "surrogate simulations")
+    _add_cluster_options(p)
+    p.add_argument("--resume", action="store_true",
+                   help="continue an earlier, possibly interrupted run in --out of the same "
+                        "input, configuration and seed: stages whose results are complete "
+                        "there are kept, the others are done (refused if the input, a "
+                        "setting or the seed differs)")
     p.set_defaults(func=_run)
+
+    _register_stage_commands(sub)
 
     p = sub.add_parser(
         "demo", help="run the whole job on the bundled sample recording",
@@ -80,6 +83,80 @@ def register(sub) -> None:
     from attractorfit.sweep import add_sweep_command
 
     add_sweep_command(sub)
+
+
+def _register_stage_commands(sub) -> None:
+    """fit, simulate, compare, report: one stage on an existing run folder."""
+    p = sub.add_parser(
+        "fit", help="fit the spiking network to the states of a run folder",
+        description="Fit a low-rank spiking network whose attractors sit at the states found "
+                    "by 'attractorfit states' in RUN_FOLDER: its occupancy and dwell times are "
+                    "calibrated on the training trials. The recording is read again from "
+                    "where the run found it (it must be unchanged); the settings and seed are "
+                    "the run's (config.toml). Writes model.npz and the 'model' block of "
+                    "summary.json.")
+    _add_stage_options(p)
+    p.set_defaults(func=_fit)
+
+    p = sub.add_parser(
+        "simulate", help="simulate a surrogate recording from the fitted network",
+        description="Simulate the network fitted by 'attractorfit fit' in RUN_FOLDER and "
+                    "write the first surrogate recording, with the data's trials, as "
+                    "surrogate.nwb (the same file 'attractorfit run' writes). 'compare' "
+                    "simulates the full set of surrogates itself, with the same random "
+                    "streams, so its numbers equal those of 'run'.")
+    _add_stage_options(p, jobs=False, data=False)
+    p.set_defaults(func=_simulate)
+
+    p = sub.add_parser(
+        "compare", help="compare the fitted network with the held-out data",
+        description="Simulate surrogate recordings from the fitted network and from null "
+                    "models, decode them with the data's state model and compare them with "
+                    "the held-out trials of the data (occupancy, dwell times, transitions, "
+                    "unit rates, variability), each statistic judged against the spread "
+                    "between independent model surrogates. Writes comparison.npz, the "
+                    "'comparison' block of summary.json and report.html (and "
+                    "surrogate.nwb when 'simulate' has not written it).")
+    _add_stage_options(p)
+    _add_cluster_options(p)
+    p.set_defaults(func=_compare)
+
+    p = sub.add_parser(
+        "report", help="write the report of a run folder again",
+        description="Rebuild figures/, tables/ and report.html of RUN_FOLDER from what the "
+                    "earlier stages stored there (no model is refitted): the states, the "
+                    "discreteness test when it was run, and the fitted network and comparison "
+                    "when 'compare' was run.")
+    _add_stage_options(p, jobs=False)
+    p.set_defaults(func=_report)
+
+
+def _add_stage_options(p, *, jobs: bool = True, data: bool = True) -> None:
+    p.add_argument("folder", metavar="RUN_FOLDER",
+                   help="folder written by 'attractorfit states' or 'attractorfit run'")
+    if data:
+        p.add_argument("--input", metavar="PATH", default=None,
+                       help="new place of the recording if it moved since the run (it must "
+                            "be the same file: its SHA-256 is checked)")
+        p.add_argument("--trials", metavar="CSV", default=None,
+                       help="new place of the trials table if it moved (checked the same "
+                            "way)")
+    if jobs:
+        p.add_argument("--jobs", type=int, default=1, metavar="N",
+                       help="worker processes (results do not depend on it)")
+    p.add_argument("--quiet", action="store_true", help="no notes")
+    p.add_argument("--verbose", action="store_true", help="log what the stage does")
+
+
+def _add_cluster_options(p) -> None:
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--scheduler", metavar="ADDRESS",
+                       help="simulate the network's surrogate recordings on a running Dask "
+                            "cluster (e.g. tcp://10.0.0.5:8786; needs the 'cluster' extra); "
+                            "results are identical to a local run")
+    where.add_argument("--local-cluster", type=int, metavar="N",
+                       help="start a local Dask cluster of N worker processes for the "
+                            "surrogate simulations")
 
 
 def _add_load_options(p) -> None:
@@ -151,6 +228,11 @@ def load_from_args(args):
     """Load the recording named on the command line with its loader options."""
     from attractorfit.io import load
 
+    return load(args.path, **_load_options(args))
+
+
+def _load_options(args) -> dict:
+    """The loader options given on the command line."""
     options = {}
     if getattr(args, "trials", None):
         options["trials"] = args.trials
@@ -160,7 +242,7 @@ def load_from_args(args):
         options["sampling_rate"] = args.sampling_rate
     if getattr(args, "good_only", False):
         options["good_only"] = True
-    return load(args.path, **options)
+    return options
 
 
 def _inspect(args) -> int:
@@ -220,27 +302,29 @@ def _prepare(args):
     from attractorfit import pipeline
 
     cfg, seed, out = _resolve(args)
+    resume = getattr(args, "resume", False)
+    if resume and args.force:
+        from attractorfit.errors import InputError
+
+        raise InputError("--resume and --force: choose one (continue the earlier run, or "
+                         "start over)")
     folder = pipeline.RunFolder(out, inputs=[args.path] + ([args.trials] if args.trials else []),
-                                force=args.force)
+                                force=args.force, resume=resume)
     return cfg, seed, folder, load_from_args(args)
 
 
 def _states(args) -> int:
-    from attractorfit import pipeline
+    from attractorfit import _stages, pipeline
 
     cfg, seed, folder, rec = _prepare(args)
+    _start_fresh(folder, cfg, args.path, _load_options(args), rec)
     res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=args.jobs,
                               progress=_progress_wanted(args), discreteness=not args.no_test)
-    summary = pipeline.base_summary(res, seed=seed)
-    summary["states"] = res.state_fit.summary_block()
-    if res.discreteness is not None:
-        summary["discreteness"] = res.discreteness.summary_block()
     pipeline.write_state_outputs(folder, res)
-    folder.write_text("config.toml", pipeline.dumps_config(cfg))
     from attractorfit._figures import write_figures_and_report
 
     write_figures_and_report(folder, res, title="attractorfit: discrete states")
-    folder.write_json("summary.json", summary)
+    _stages.save_states(folder, res, seed=seed, fresh=True)
     if not args.quiet:
         sf = res.state_fit
         print(f"{sf.n_states} states (vertex codes {', '.join(sf.vertex_text)}); "
@@ -252,58 +336,215 @@ def _states(args) -> int:
 
 def _run(args) -> int:
     cfg, seed, folder, rec = _prepare(args)
+    _check_cluster(args)
+    return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
+                          progress=not args.quiet, scheduler=args.scheduler,
+                          local_cluster=args.local_cluster, resume=args.resume,
+                          input_path=args.path, load_options=_load_options(args))
+
+
+def _check_cluster(args) -> None:
     if args.local_cluster is not None and args.local_cluster < 1:
         from attractorfit.errors import InputError
 
         raise InputError(f"--local-cluster: expected a whole number >= 1, got "
                          f"{args.local_cluster}")
-    return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
-                          progress=not args.quiet, scheduler=args.scheduler,
-                          local_cluster=args.local_cluster)
+
+
+def _start_fresh(folder, cfg, input_path, load_options, rec) -> None:
+    """Before any work: forget stage files of an earlier run; record config and input."""
+    from attractorfit import _stages
+
+    _stages.remove_stage_files(folder)
+    _record_run(folder, cfg, input_path, load_options, rec)
+
+
+def _record_run(folder, cfg, input_path, load_options, rec) -> None:
+    from attractorfit import _stages, pipeline
+
+    folder.write_text("config.toml", pipeline.dumps_config(cfg))
+    _stages.write_input_record(folder, input_path, load_options, rec)
 
 
 def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress, scheduler=None,
-                   local_cluster=None) -> int:
+                   local_cluster=None, resume=False, input_path=None,
+                   load_options=None) -> int:
     import time
 
-    from attractorfit import pipeline
+    from attractorfit import _stages, pipeline
     from attractorfit._figures import write_figures_and_report
 
     from tqdm.auto import tqdm
 
     t0 = time.perf_counter()
     pipeline.log.info("%s", rec)
-    bar = tqdm(total=3, desc="states", unit="stage", disable=quiet or not sys.stderr.isatty(),
+    done = set()
+    if resume and _stages.check_resume(folder, cfg, seed, rec):
+        done = _stages.completed_stages(folder)
+        _record_run(folder, cfg, input_path, load_options or {}, rec)
+        kept = [s for s in _stages.STAGES if s in done]
+        todo = [s for s in _stages.STAGES if s not in done] + ["report"]
+        pipeline.log.info("resuming the run in %s: keeping %s; doing %s", folder.path,
+                          ", ".join(kept) or "nothing", ", ".join(todo))
+        if not quiet:
+            print(f"resuming: kept {', '.join(kept) or 'nothing'}; doing {', '.join(todo)}")
+    else:
+        _start_fresh(folder, cfg, input_path, load_options or {}, rec)
+    bar = tqdm(total=5, desc="states", unit="stage", disable=quiet or not sys.stderr.isatty(),
                bar_format="{desc:<28}{bar:20} {n_fmt}/{total_fmt} [{elapsed}]")
-    pipeline.log.info("finding states and testing discreteness")
-    res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=jobs, progress=False)
-    bar.update(1)
-    bar.set_description("network fit and comparison")
-    pipeline.run_model(res, seed=seed, n_jobs=jobs, progress=progress, scheduler=scheduler,
-                       local_cluster=local_cluster)
-    bar.update(1)
-    bar.set_description("figures and report")
-    summary = pipeline.base_summary(res, seed=seed)
-    summary["states"] = res.state_fit.summary_block()
-    summary["discreteness"] = res.discreteness.summary_block()
-    summary["model"] = res.network_fit.summary_block()
-    summary["comparison"] = res.comparison.summary_block()
-    pipeline.write_state_outputs(folder, res)
-    pipeline.write_model_outputs(folder, res)
-    folder.write_text("config.toml", pipeline.dumps_config(cfg))
+
+    def step(name):
+        bar.update(1)
+        bar.set_description(name)
+
+    def skipped(stage):
+        pipeline.log.info("%s: complete in the run folder (%s); skipped", stage,
+                          _stages.MARKERS[stage])
+
+    if "states" in done:
+        skipped("states")
+        res = _stages.restore_states(folder, rec, cfg, need_discreteness=True)
+    else:
+        pipeline.log.info("finding states and testing discreteness")
+        res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=jobs, progress=False)
+        pipeline.write_state_outputs(folder, res)
+        _stages.save_states(folder, res, seed=seed, fresh=not resume)
+    step("network fit")
+    if "fit" in done:
+        skipped("fit")
+        _stages.restore_fit(folder, res)
+    else:
+        pipeline.fit_model(res, seed=seed, n_jobs=jobs, progress=progress)
+        _stages.save_fit(folder, res)
+    step("surrogates")
+    cluster = {"scheduler": scheduler, "local_cluster": local_cluster}
+    if "simulate" in done:
+        skipped("simulate")
+    elif "compare" in done:
+        pipeline.simulate_model(res, seed=seed, n=1, **cluster)
+        _stages.save_surrogate(folder, res)
+    else:
+        pipeline.simulate_model(res, seed=seed, n_jobs=jobs, progress=progress, **cluster)
+        _stages.save_surrogate(folder, res)
+    step("comparison")
+    if "compare" in done:
+        skipped("compare")
+        _stages.restore_comparison(folder, res)
+        _stages.first_surrogate(folder, res)
+    else:
+        if not res.surrogates:  # kept from an earlier run: the same streams again
+            pipeline.simulate_model(res, seed=seed, n_jobs=jobs, progress=progress, **cluster)
+        pipeline.compare_model(res, seed=seed, n_jobs=jobs, progress=progress)
+        _stages.save_comparison(folder, res)
+    step("figures and report")
     pipeline.log.info("writing figures and report")
     write_figures_and_report(folder, res)
-    folder.write_json("summary.json", summary)
     bar.update(1)
     bar.close()
     if not quiet:
         sf, d, c = res.state_fit, res.discreteness, res.comparison.summary_block()
         print(f"{sf.n_states} states, vertex codes {', '.join(sf.vertex_text)}; "
               f"discreteness: {d.verdict} (p = {d.p_value:.3g})")
-        print(f"fitted network vs held-out data: occupancy TVD {c.get('occupancy_tvd', float('nan')):.3f} "
-              f"(reference {c.get('occupancy_tvd_ref95', float('nan')):.3f}), unit-rate R^2 "
-              f"{c.get('rate_r2', float('nan')):.3f}")
+        _print_comparison(c)
         print(f"report: {folder.file('report.html')}  ({time.perf_counter() - t0:.0f} s)")
+    return 0
+
+
+def _print_comparison(c) -> None:
+    print(f"fitted network vs held-out data: occupancy TVD {c.get('occupancy_tvd', float('nan')):.3f} "
+          f"(reference {c.get('occupancy_tvd_ref95', float('nan')):.3f}), unit-rate R^2 "
+          f"{c.get('rate_r2', float('nan')):.3f}")
+
+
+def _stage_start(args, command):
+    """Run folder, configuration and seed of a stage command (checked before any work)."""
+    from attractorfit import _stages
+
+    if getattr(args, "jobs", 1) < 1:
+        from attractorfit.errors import InputError
+
+        raise InputError(f"--jobs: expected a whole number >= 1, got {args.jobs}")
+    return _stages.open_run_folder(args.folder, command=command)
+
+
+def _stage_data(args, folder, cfg, command, *, upto="states"):
+    """Re-read the recording (hash-checked) and restore the stages up to ``upto``."""
+    from attractorfit import _stages
+
+    _stages.need(folder, _stages.MARKERS["states"], "states", command)
+    if upto == "fit":
+        _stages.need(folder, _stages.MARKERS["fit"], "fit", command)
+    rec = _stages.reload_recording(folder, path=args.input, trials=args.trials,
+                                   command=command)
+    res = _stages.restore_states(folder, rec, cfg, command=command)
+    if upto == "fit":
+        _stages.restore_fit(folder, res, command=command)
+    return res
+
+
+def _fit(args) -> int:
+    from attractorfit import _stages, pipeline
+
+    folder, cfg, seed = _stage_start(args, "fit")
+    res = _stage_data(args, folder, cfg, "fit")
+    pipeline.fit_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet)
+    _stages.save_fit(folder, res)
+    if not args.quiet:
+        nf = res.network_fit
+        print(f"fitted a rank-{nf.rank} network ({nf.rule} decoder, tau_s "
+              f"{nf.tau_s * 1e3:.0f} ms); model.npz in {folder.path}")
+    return 0
+
+
+def _simulate(args) -> int:
+    from attractorfit import _stages, pipeline
+
+    folder, cfg, seed = _stage_start(args, "simulate")
+    res = pipeline.RunResult(config=cfg, recording=None, binned=None, folder=folder)
+    _stages.restore_fit(folder, res, command="simulate")
+    pipeline.simulate_model(res, seed=seed, n=1, progress=not args.quiet)
+    _stages.save_surrogate(folder, res)
+    if not args.quiet:
+        print(f"surrogate recording: {folder.file(_stages.MARKERS['simulate'])}")
+    return 0
+
+
+def _compare(args) -> int:
+    from attractorfit import _stages, pipeline
+    from attractorfit._figures import write_figures_and_report
+
+    folder, cfg, seed = _stage_start(args, "compare")
+    _check_cluster(args)
+    res = _stage_data(args, folder, cfg, "compare", upto="fit")
+    pipeline.simulate_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet,
+                            scheduler=args.scheduler, local_cluster=args.local_cluster)
+    pipeline.compare_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet)
+    _stages.save_surrogate(folder, res, if_missing=True)  # what 'simulate' would write
+    _stages.save_comparison(folder, res)
+    write_figures_and_report(folder, res)
+    if not args.quiet:
+        _print_comparison(res.comparison.summary_block())
+        print(f"report: {folder.file('report.html')}")
+    return 0
+
+
+def _report(args) -> int:
+    import os
+
+    from attractorfit import _stages
+    from attractorfit._figures import write_figures_and_report
+
+    folder, cfg, seed = _stage_start(args, "report")
+    has_model = os.path.exists(folder.file(_stages.MARKERS["compare"]))
+    res = _stage_data(args, folder, cfg, "report", upto="fit" if has_model else "states")
+    title = "attractorfit: discrete states"
+    if has_model:
+        _stages.restore_comparison(folder, res, command="report")
+        _stages.first_surrogate(folder, res, command="report")
+        title = "attractorfit report"
+    write_figures_and_report(folder, res, title=title)
+    if not args.quiet:
+        print(f"report: {folder.file('report.html')}")
     return 0
 
 
@@ -323,7 +564,8 @@ def _demo(args) -> int:
     folder = pipeline.RunFolder(out, inputs=[path], force=True)
     rec = load(path)
     return _run_recording(rec, cfg, int(cfg["run"]["seed"]), folder, jobs=args.jobs,
-                          quiet=args.quiet, progress=not args.quiet)
+                          quiet=args.quiet, progress=not args.quiet, input_path=path,
+                          load_options={})
 
 
 def _levels(col) -> str:

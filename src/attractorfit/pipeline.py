@@ -1,6 +1,7 @@
 """The stages chained with one configuration, and the run folder.
 
-This module and ``io/`` are the only places that touch disk. Each stage takes the
+This module, :mod:`attractorfit._stages` (the stages on a run folder, ``--resume``)
+and ``io/`` are the only places that touch disk. Each stage takes the
 result dataclass of the stage before; :class:`RunFolder` writes every file
 atomically and never into the input's folder unless the user names it.
 """
@@ -27,7 +28,8 @@ __all__ = ["RunFolder", "RunResult", "run_states", "input_record", "versions",
 
 #: Files a run folder may hold; a folder holding anything else is not ours to overwrite.
 RUN_FILES = ("summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
-             "surrogate.nwb", "report.html", "figures", "tables")
+             "surrogate.nwb", "report.html", "figures", "tables", "input.json",
+             "state_model.npz", "discreteness.npz", "comparison.npz")
 
 
 def versions() -> dict:
@@ -85,9 +87,13 @@ class RunFolder:
         unless ``allow_input_folder``.
     force : bool
         Overwrite a folder that already holds a run.
+    resume : bool
+        Accept a folder that already holds a run, to continue it (``run --resume``).
     """
 
-    def __init__(self, path, *, inputs=(), force=False, allow_input_folder=False):
+    def __init__(self, path, *, inputs=(), force=False, allow_input_folder=False,
+                 resume=False):
+        force = force or resume
         self.path = os.path.abspath(os.fspath(path))
         for p in inputs:
             folder = os.path.abspath(p if os.path.isdir(p) else os.path.dirname(p) or ".")
@@ -179,10 +185,16 @@ def _condition_column(binned, cfg) -> str | None:
     return next(iter(labels), None)
 
 
+def analysed_counts(binned):
+    """``binned`` with only its categorical label columns (those get condition tables)."""
+    from attractorfit.binning import BinnedCounts
+
+    return BinnedCounts(**{**binned.__dict__, "labels": categorical_labels(binned.labels)})
+
+
 def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int = 1,
                progress: bool = False, discreteness: bool = True) -> RunResult:
     """Binning, discrete states and the discreteness test of one recording."""
-    from attractorfit.binning import BinnedCounts
     from attractorfit.states import analyse_states, discreteness_test
 
     cfg = resolve_config(cfg) if cfg is None or "run" not in cfg else cfg
@@ -190,9 +202,7 @@ def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int
     with _deterministic_threads():
         binned = bin_for_analysis(recording, cfg)
         cond = _condition_column(binned, cfg)
-        # condition tables only for categorical labels
-        cat = categorical_labels(binned.labels)
-        analysed = BinnedCounts(**{**binned.__dict__, "labels": cat})
+        analysed = analysed_counts(binned)
         st = cfg["states"]
         n_states = st["n_states"] or None
         candidates = range(st["min_states"], st["max_states"] + 1)
@@ -282,6 +292,18 @@ def _surrogate_task(seed, network_fit):
     return network_fit.simulate_recording(rng=np.random.default_rng(seed))
 
 
+def model_streams(seed: int) -> dict:
+    """The random streams of the model stages, children 2..6 of ``SeedSequence(seed)``.
+
+    Children 0 and 1 belong to :func:`run_states`; the trial split, the fit, the
+    surrogates, the nulls and the comparison each take their own child, so running a
+    stage alone (``fit``, ``simulate``, ``compare`` on a run folder) draws the same
+    numbers as :func:`run_model`.
+    """
+    names = ("split", "fit", "surrogates", "nulls", "compare")
+    return dict(zip(names, np.random.SeedSequence(seed).spawn(7)[2:]))
+
+
 def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
               progress: bool = False, scheduler: str | None = None,
               local_cluster: int | None = None) -> RunResult:
@@ -294,53 +316,109 @@ def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
 
     Streams: the fit, the surrogates, the nulls and the comparison each take their
     own child of ``SeedSequence(seed)`` (after the two used by :func:`run_states`), so
-    adding a stage never changes the random numbers of another.
+    adding a stage never changes the random numbers of another (:func:`model_streams`).
+    The three steps are also available alone: :func:`fit_model`,
+    :func:`simulate_model`, :func:`compare_model`.
     """
-    from attractorfit.compare import compare
+    fit_model(result, seed=seed, n_jobs=n_jobs, progress=progress)
+    simulate_model(result, seed=seed, n_jobs=n_jobs, progress=progress, scheduler=scheduler,
+                   local_cluster=local_cluster)
+    return compare_model(result, seed=seed, n_jobs=n_jobs, progress=progress)
+
+
+def held_out_trials(result: RunResult, *, seed: int = 0) -> tuple:
+    """``(train, held_out)`` trial positions of the comparison (stream ``split``)."""
+    cfg = result.config
+    cond = _condition_column(result.binned, cfg)
+    return split_trials(result.binned, cond, cfg["compare"]["held_out_fraction"],
+                        np.random.default_rng(model_streams(seed)["split"]))
+
+
+def fit_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
+              progress: bool = False) -> RunResult:
+    """Fit the network on the training trials (sets ``network_fit`` and ``held_out``)."""
     from attractorfit.fit import fit_network
-    from attractorfit.surrogates import bin_like, network_surrogates, null_surrogates
 
     cfg = result.config
-    nw, cp = cfg["network"], cfg["compare"]
-    ss = np.random.SeedSequence(seed).spawn(7)[2:]
-    split_seed, fit_seed, sur_seed, null_seed, cmp_seed = ss
+    nw = cfg["network"]
     b, sf, rec = result.binned, result.state_fit, result.recording
     cond = _condition_column(b, cfg)
     with _deterministic_threads():
-        train, held = split_trials(b, cond, cp["held_out_fraction"],
-                                   np.random.default_rng(split_seed))
+        train, held = held_out_trials(result, seed=seed)
         _note(progress, "fitting the network")
         nf = fit_network(b, sf, rule=nw["rule"], hypercube=nw["hypercube"],
                          rank=None if nw["rank"] in (0, None) else nw["rank"],
                          extra_neurons=nw["extra_neurons"],
                          tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
                          recording=rec, condition=cond if cond else False,
-                         train_trials=train, rng=np.random.default_rng(fit_seed),
+                         train_trials=train,
+                         rng=np.random.default_rng(model_streams(seed)["fit"]),
                          progress=False)
-        _note(progress, f"simulating {cp['n_surrogates']} surrogate recordings")
+    result.network_fit = nf
+    result.held_out = held
+    return result
+
+
+def simulate_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
+                   progress: bool = False, scheduler: str | None = None,
+                   local_cluster: int | None = None, n: int | None = None) -> RunResult:
+    """Simulate the fitted network's surrogate recordings (sets ``surrogates``).
+
+    ``n`` (default: ``compare.n_surrogates``) simulates only the first ``n`` of them;
+    surrogate i does not depend on how many are simulated.
+    """
+    from attractorfit.surrogates import network_surrogates, spawn_streams
+
+    cp = result.config["compare"]
+    n = cp["n_surrogates"] if n is None else int(n)
+    nf = result.network_fit
+    rng = np.random.default_rng(model_streams(seed)["surrogates"])
+    with _deterministic_threads():
+        _note(progress, f"simulating {n} surrogate recordings")
         if scheduler or local_cluster:
-            from attractorfit.surrogates import spawn_streams
             from attractorfit.sweep import run_parallel
 
-            seeds = spawn_streams(np.random.default_rng(sur_seed), cp["n_surrogates"])
+            seeds = spawn_streams(rng, n)
             sur = run_parallel(_surrogate_task, seeds, shared=nf, scheduler=scheduler,
                                local_cluster=local_cluster)
         else:
-            sur = network_surrogates(nf, cp["n_surrogates"],
-                                     rng=np.random.default_rng(sur_seed), n_jobs=n_jobs)
+            sur = network_surrogates(nf, n, rng=rng, n_jobs=n_jobs)
+    result.surrogates = sur
+    return result
+
+
+def compare_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
+                  progress: bool = False) -> RunResult:
+    """Null surrogates and the model-vs-data comparison (sets ``comparison``).
+
+    Needs ``network_fit`` and all ``compare.n_surrogates`` surrogates (see
+    :func:`simulate_model`).
+    """
+    from attractorfit.compare import compare
+    from attractorfit.surrogates import bin_like, null_surrogates
+
+    cfg = result.config
+    cp = cfg["compare"]
+    b, sf, rec = result.binned, result.state_fit, result.recording
+    cond = _condition_column(b, cfg)
+    sur = result.surrogates
+    streams = model_streams(seed)
+    with _deterministic_threads():
+        held = result.held_out
+        if held is None:
+            held = held_out_trials(result, seed=seed)[1]
         nulls = {}
         if cp["nulls"]:
             _note(progress, f"simulating null surrogates ({', '.join(cp['nulls'])})")
             nulls = null_surrogates(rec, b, cp["nulls"], cp["n_null"], condition=cond,
-                                    rng=np.random.default_rng(null_seed), n_jobs=n_jobs)
+                                    rng=np.random.default_rng(streams["nulls"]),
+                                    n_jobs=n_jobs)
         _note(progress, "comparing model and data")
         cmp_ = compare(b, sur, sf, recording=rec, nulls=nulls,
                        trials=held if held.size else None, refit=cp["refit"],
                        condition=cond, n_boot=cp["n_boot"],
-                       rng=np.random.default_rng(cmp_seed), n_jobs=n_jobs)
-    result.network_fit = nf
+                       rng=np.random.default_rng(streams["compare"]), n_jobs=n_jobs)
     result.comparison = cmp_
-    result.surrogates = sur
     first = bin_like(sur[0], b)
     result.surrogate_example = (sur[0], first, sf.decode(first))
     result.held_out = held
@@ -350,12 +428,3 @@ def run_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
 def _note(progress: bool, text: str) -> None:
     """Log a stage (shown with --verbose)."""
     log.info(text)
-
-
-def write_model_outputs(folder: RunFolder, result: RunResult) -> None:
-    """model.npz and surrogate.nwb of a fitted network."""
-    from attractorfit.io import write_nwb
-
-    arrays = result.network_fit.to_arrays()
-    folder.write_npz("model.npz", **arrays)
-    write_nwb(result.surrogates[0], folder.file("surrogate.nwb"))
