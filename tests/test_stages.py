@@ -126,7 +126,9 @@ def test_resume_redoes_deleted_later_stages(full, tmp_path, caplog):
         (out / name).unlink()
     before = (out / "model.npz").stat().st_mtime_ns
     caplog.set_level(logging.INFO, logger="attractorfit")
-    assert _main("run", d / "rec.nwb", "--out", out, "--config", d / "run.toml", "--seed",
+    cfg = tmp_path / "sharper.toml"  # [report] settings may change on resume
+    cfg.write_text(RUN.replace("dpi = 50", "dpi = 60"))
+    assert _main("run", d / "rec.nwb", "--out", out, "--config", cfg, "--seed",
                  "1", "--quiet", "--resume") == 0
     assert (out / "model.npz").stat().st_mtime_ns == before
     assert (out / "surrogate.nwb").exists() and (out / "report.html").exists()

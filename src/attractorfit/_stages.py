@@ -315,6 +315,7 @@ def check_resume(folder, cfg: dict, seed: int, recording) -> bool:
     ------
     InputError
         The seed, a setting or the input differs from what the folder records.
+        Settings of ``[report]`` may differ: the report is always redone.
     """
     from attractorfit.config import load_config
 
@@ -327,6 +328,8 @@ def check_resume(folder, cfg: dict, seed: int, recording) -> bool:
         raise InputError(f"--resume: seed {seed} differs from seed {old_seed} of the run in "
                          f"{folder.path}; use the same seed, or --force to start over")
     for section, values in cfg.items():
+        if section == "report":  # figures and report are always redone: free to change
+            continue
         for key, value in values.items():
             was = old.get(section, {}).get(key)
             if was != value:
