@@ -106,20 +106,41 @@ def available_memory() -> int:
         return 4 << 30
 
 
-def check_claimed_size(where: str, shape, itemsize: int) -> int:
+def check_claimed_size(where: str, shape, itemsize: int, *, what: str | None = None) -> int:
     """Refuse an array whose claimed size exceeds :data:`MEMORY_FRACTION` of free memory.
 
     Called with the shape read from a file header, before anything is allocated.
-    Returns the number of elements.
+    ``what`` replaces "an array of shape ..." in the message. Returns the number of
+    elements.
     """
     count = math.prod(int(s) for s in shape)
     nbytes = count * max(int(itemsize), 1)
     limit = int(available_memory() * MEMORY_FRACTION)
     if nbytes > limit:
-        raise InputError(f"{where}: the file claims an array of shape {tuple(shape)} "
-                         f"({nbytes / 1e9:.3g} GB), more than the {limit / 1e9:.3g} GB that "
-                         "can be allocated now; expected a smaller or uncorrupted file")
+        what = what or f"an array of shape {tuple(int(s) for s in shape)}"
+        raise InputError(f"{where}: the file claims {what} ({nbytes / 1e9:.3g} GB of "
+                         f"memory), more than the {limit / 1e9:.3g} GB that can be allocated "
+                         "now; expected a smaller or uncorrupted file")
     return count
+
+
+#: Memory one row of a text table takes while it is parsed (Python strings and list
+#: slots for the kept fields, then the arrays), in bytes; a generous estimate.
+TEXT_ROW_BYTES = 256
+
+
+def check_text_size(path, where: str) -> None:
+    """Refuse a text table whose rows would not fit in memory, before reading it.
+
+    The number of rows is estimated from the file size and the line length of its
+    first MiB.
+    """
+    size = os.path.getsize(path)
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 20)
+    rows = max(head.count(b"\n"), 1) * (size / max(len(head), 1))
+    check_claimed_size(where, (math.ceil(rows),), TEXT_ROW_BYTES,
+                       what=f"about {rows:.3g} rows of text ({size / 1e9:.3g} GB on disk)")
 
 
 def read_npy_header(fh, where: str):
@@ -229,6 +250,15 @@ def resolve_trials(file_trials, trials_path, *, source: str, time_unit: str,
 
 
 def finish(rec, warnings: list):
-    """Put the loader's warnings before the quality warnings of ``rec``; return it."""
+    """Put the loader's warnings before the quality warnings of ``rec``; return it.
+
+    Each loader warning is also emitted as an :class:`~attractorfit.errors.InputWarning`
+    (the quality warnings were emitted by :meth:`Recording.validate`).
+    """
+    from attractorfit._validation import warn_input
+
+    for w in dict.fromkeys(warnings):
+        if w not in rec.warnings:
+            warn_input(w)
     rec.warnings = list(dict.fromkeys(list(warnings) + list(rec.warnings)))
     return rec

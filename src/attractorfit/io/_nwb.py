@@ -67,6 +67,7 @@ def _read_units(units, name: str, unit_column, warnings: list):
                          "spike_times_index)")
     check_claimed_size(f"{name}: units spike_times", col.target.data.shape,
                        np.dtype(col.target.data.dtype).itemsize)
+    check_claimed_size(f"{name}: units spike_times_index", col.data.shape, 8)
     ends = np.asarray(col.data[:], dtype=np.int64).ravel()
     flat = np.asarray(col.target.data[:], dtype=np.float64).ravel()
     if ends.size and (np.any(np.diff(ends) < 0) or ends[0] < 0 or ends[-1] != flat.size):
@@ -109,6 +110,8 @@ def _interval_columns(table, name: str, warnings: list) -> dict | None:
     if n == 0:
         warnings.append(f"{name}: the {table.name} table is empty; ignored")
         return None
+    check_claimed_size(f"{name}: {table.name} table", (n, max(len(table.colnames), 2)), 8,
+                       what=f"{n} rows of {len(table.colnames)} columns")
     out = {"start": np.asarray(table["start_time"].data[:], dtype=np.float64),
            "stop": np.asarray(table["stop_time"].data[:], dtype=np.float64)}
     skipped = []

@@ -13,8 +13,8 @@ import numpy as np
 from attractorfit._output import atomic_write
 from attractorfit._validation import check_trials, warn_input
 from attractorfit.errors import InputError
-from attractorfit.io._common import (check_file, finish, provenance_of, resolve_trials,
-                                     source_name, time_factor)
+from attractorfit.io._common import (check_file, check_text_size, finish, provenance_of,
+                                     resolve_trials, source_name, time_factor)
 from attractorfit.recording import Recording
 
 __all__ = ["read_table", "read_trials_table", "write_csv"]
@@ -213,6 +213,7 @@ def read_trials_table(path, *, time_unit: str = "s", start_column: str = "start"
     path = check_file(path)
     name = source_name(path)
     factor = time_factor(time_unit)
+    check_text_size(path, name)
     delim = _delimiter(path, delimiter)
     rows = _rows(path, delim)
     hline, header = _header(path, rows, what="a trials table with columns 'start' and "
@@ -274,13 +275,15 @@ def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
     Raises
     ------
     InputError
-        Missing, empty or unreadable file, missing columns, rows of the wrong width,
+        Missing, empty or unreadable file, a file too large to parse in the memory
+        available (checked before reading), missing columns, rows of the wrong width,
         empty unit labels, spike times that are not finite numbers >= 0, fewer than
         two units, no spikes. Messages name the file and the line.
     """
     path = check_file(path)
     name = source_name(path)
     factor = time_factor(time_unit)
+    check_text_size(path, name)
     delim = _delimiter(path, delimiter)
     rows = _rows(path, delim)
     hline, header = _header(path, rows, what=f"a spike table with columns "
