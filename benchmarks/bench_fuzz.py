@@ -1,5 +1,10 @@
 """Longer fuzz run of every loader and the configuration parser (hypothesis).
 
+Targets: spike tables (text and raw bytes), NPZ archives, mutated NWB files, sorter
+folders (params.py, .npy arrays, cluster labels), mutated NIX files (through neo),
+recordings with arbitrary trials (assembly and binning: coverage, time-unit and silent-
+unit checks), and configuration files.
+
 Any input must either load or raise attractorfit's InputError; anything else is a crash.
 Prints, per target, the number of inputs tried and the crashes found (with the first
 failing input's exception), and exits 1 if any target crashed.
@@ -24,6 +29,8 @@ from hypothesis import strategies as st
 from attractorfit.config import load_config
 from attractorfit.errors import InputError
 from attractorfit.io import load, write_nwb
+from attractorfit.binning import bin_spikes
+from attractorfit.recording import Recording
 from attractorfit.synthetic import switching_recording
 
 COUNTS = {}
@@ -132,11 +139,76 @@ def fuzz(n):
             fh.write(text)
         _attempt("config", lambda: load_config(p))
 
-    for f in (table, table_bytes, npz, nwb, config):
-        t = time.perf_counter()
+    params = st.one_of(
+        st.sampled_from(["sample_rate = 30000.0", "sample_rate = 0", "sample_rate = 'x'",
+                         "sample_rate = __import__('os').system('false')",
+                         "sample_rate = float('nan')", "sample_rate = (", "\x00",
+                         "sample_rate = 1e400", "import os\nsample_rate = 1e3"]),
+        st.text(max_size=40))
+
+    @cfg
+    @given(par=params, times=arrays, clusters=arrays,
+           group=st.one_of(st.none(), st.text(max_size=30)))
+    def sorter(par, times, clusters, group):
+        d = tempfile.mkdtemp(dir=tmp)
+        with open(os.path.join(d, "params.py"), "w", encoding="utf-8",
+                  errors="surrogatepass") as fh:
+            fh.write(par)
+        np.save(os.path.join(d, "spike_times.npy"), times)
+        np.save(os.path.join(d, "spike_clusters.npy"), clusters)
+        if group is not None:
+            with open(os.path.join(d, "cluster_group.tsv"), "w", encoding="utf-8",
+                      errors="surrogatepass") as fh:
+                fh.write("cluster_id\tgroup\n" + group)
+        _attempt("sorter folder", lambda: load(d, good_only=bool(group)))
+
+    from neo.io import NixIO
+
+    nix = os.path.join(tmp, "good.nix")
+    with NixIO(nix, mode="ow") as io_:
+        io_.write_block(rec.to_neo())
+    with open(nix, "rb") as fh:
+        nix_bytes = fh.read()
+
+    @cfg
+    @given(pos=st.lists(st.integers(0, len(nix_bytes) - 1), min_size=1, max_size=8),
+           val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(nix_bytes))))
+    def nix_file(pos, val, cut):
+        b = bytearray(nix_bytes)
+        for i in pos:
+            b[i] = val
+        if cut is not None:
+            b = b[:cut]
+        p = os.path.join(tmp, "mut.nix")
+        with open(p, "wb") as fh:
+            fh.write(bytes(b))
+        _attempt("nix (mutated)", lambda: load(p))
+
+    @cfg
+    @given(data=st.data())
+    def recording(data):
+        n = data.draw(st.integers(0, 60))
+        scale = data.draw(st.sampled_from([1e-3, 1.0, 1e3]))
+        times = np.array(data.draw(st.lists(st.floats(0, 100), min_size=n, max_size=n)))
+        units = np.array(data.draw(st.lists(st.integers(0, 3), min_size=n, max_size=n)))
+        k = data.draw(st.integers(1, 6))
+        start = np.array(data.draw(st.lists(st.floats(0, 100), min_size=k, max_size=k)))
+        dur = np.array(data.draw(st.lists(st.floats(0, 20), min_size=k, max_size=k)))
+        bin_size = data.draw(st.sampled_from([0.01, 0.5, 5.0]))
+        min_rate = data.draw(st.sampled_from([0.0, 0.5, 50.0]))
+
+        def go():
+            r = Recording.from_arrays(times * scale, units,
+                                      trials={"start": start, "stop": start + dur})
+            bin_spikes(r, bin_size=bin_size, min_rate_hz=min_rate)
+        _attempt("recording+binning", go)
+
+    for f in (table, table_bytes, npz, nwb, sorter, nix_file, recording, config):
+        t, c = time.perf_counter(), time.process_time()
         f()
         name = f.__name__
-        print(f"{name:<14} done in {time.perf_counter() - t:6.1f} s", flush=True)
+        print(f"{name:<14} done in {time.perf_counter() - t:6.1f} s wall, "
+              f"{time.process_time() - c:6.1f} s CPU", flush=True)
 
 
 def main():

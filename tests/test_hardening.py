@@ -510,3 +510,42 @@ def test_any_recording_with_trials_loads_or_raises_input_error(tmp_path_factory,
             bin_spikes(rec, bin_size=data.draw(st.sampled_from([0.01, 0.5, 5.0])))
         except InputError:
             pass
+
+
+@pytest.fixture(scope="module")
+def nix_bytes(tmp_path_factory):
+    from neo.io import NixIO
+
+    times, units, trials = _trials_rec(n_units=3, n_trials=3)
+    p = tmp_path_factory.mktemp("nix") / "good.nix"
+    with NixIO(str(p), mode="ow") as io:
+        io.write_block(Recording.from_arrays(times, units, trials=trials).to_neo())
+    return p.read_bytes()
+
+
+@settings(max_examples=12, deadline=None, database=None,
+          suppress_health_check=list(HealthCheck))
+@given(data=st.data())
+def test_any_mutated_nix_file_loads_or_raises_input_error(tmp_path_factory, nix_bytes, data):
+    b = bytearray(nix_bytes)
+    for i in data.draw(st.lists(st.integers(0, len(b) - 1), min_size=1, max_size=6)):
+        b[i] = data.draw(st.integers(0, 255))
+    cut = data.draw(st.one_of(st.none(), st.integers(0, len(b))))
+    p = tmp_path_factory.mktemp("mutnix") / "m.nix"
+    p.write_bytes(bytes(b if cut is None else b[:cut]))
+    _load_or_input_error(p)
+
+
+# ------------------------------------------------------------------ atomic outputs
+@pytest.mark.parametrize("exc", [RuntimeError, KeyboardInterrupt])
+def test_interrupted_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path, exc):
+    from attractorfit._output import atomic_writer
+
+    target = tmp_path / "summary.json"
+    target.write_text("old")
+    with pytest.raises(exc):
+        with atomic_writer(target, "w") as fh:
+            fh.write("half of the new conte")
+            raise exc()
+    assert target.read_text() == "old"
+    assert sorted(os.listdir(tmp_path)) == ["summary.json"]

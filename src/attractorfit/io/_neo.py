@@ -158,8 +158,10 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
     ------
     InputError
         No neo IO for the suffix, a refused IO (pickle files, neo's example IO, NWB
-        which :func:`read_nwb` reads), every candidate IO failing on the file, bad
-        times or trials, fewer than two units, no spikes.
+        which :func:`read_nwb` reads), every candidate IO failing on the file, a file
+        claiming more memory than is available (HDF5 dataset shapes for IOs that read
+        everything, spike counts of lazy IOs; checked before loading), bad times or
+        trials, fewer than two units, no spikes.
 
     References
     ----------
