@@ -9,7 +9,7 @@ Any input must either load or raise attractorfit's InputError; anything else is 
 Prints, per target, the number of inputs tried and the crashes found (with the first
 failing input's exception), and exits 1 if any target crashed.
 
-    python benchmarks/bench_fuzz.py [--examples 2000]
+    python benchmarks/bench_fuzz.py [--examples 2000] [--file-examples 500]
 """
 
 from __future__ import annotations
@@ -66,10 +66,13 @@ def tables(draw):
     return head + "\n" + "\n".join(sep.join(r) for r in rows)
 
 
-def fuzz(n):
+def fuzz(n, n_files=None):
     tmp = tempfile.mkdtemp(prefix="af-fuzz-")
     cfg = settings(max_examples=n, deadline=None, database=None,
                    suppress_health_check=list(HealthCheck))
+    # HDF5 targets cost more per input (each file is first walked in a child process)
+    cfg_files = settings(max_examples=n_files or n, deadline=None, database=None,
+                         suppress_health_check=list(HealthCheck))
 
     @cfg
     @given(text=tables(), suffix=st.sampled_from([".csv", ".tsv", ".txt"]))
@@ -107,7 +110,7 @@ def fuzz(n):
     with open(good, "rb") as fh:
         nwb_bytes = fh.read()
 
-    @cfg
+    @cfg_files
     @given(pos=st.lists(st.integers(0, len(nwb_bytes) - 1), min_size=1, max_size=8),
            val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(nwb_bytes))))
     def nwb(pos, val, cut):
@@ -170,7 +173,7 @@ def fuzz(n):
     with open(nix, "rb") as fh:
         nix_bytes = fh.read()
 
-    @cfg
+    @cfg_files
     @given(pos=st.lists(st.integers(0, len(nix_bytes) - 1), min_size=1, max_size=8),
            val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(nix_bytes))))
     def nix_file(pos, val, cut):
@@ -214,8 +217,10 @@ def fuzz(n):
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--examples", type=int, default=2000, help="examples per target")
+    ap.add_argument("--file-examples", type=int, default=None,
+                    help="examples for the NWB and NIX targets (default: --examples)")
     args = ap.parse_args()
-    fuzz(args.examples)
+    fuzz(args.examples, args.file_examples)
     print()
     print(f"{'target':<16}{'inputs tried':>14}{'crashes':>10}")
     for k, n in COUNTS.items():

@@ -55,7 +55,8 @@ def _write_table(path, times, units):
 
 
 def _write_trials(path, start, stop):
-    path.write_text("start,stop\n" + "".join(f"{float(a)!r},{float(b)!r}\n" for a, b in zip(start, stop)))
+    rows = "".join(f"{float(a)!r},{float(b)!r}\n" for a, b in zip(start, stop))
+    path.write_text("start,stop\n" + rows)
     return path
 
 
@@ -549,3 +550,70 @@ def test_interrupted_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path, 
             raise exc()
     assert target.read_text() == "old"
     assert sorted(os.listdir(tmp_path)) == ["summary.json"]
+
+
+def test_sorting_warnings_reach_the_recording_warnings_once(tmp_path):
+    times, units, trials = _trials_rec(n_trials=3)
+    p = _write_trials(tmp_path / "t.csv", trials["start"][::-1], trials["stop"][::-1])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        rec = load(_write_table(tmp_path / "s.csv", times, units), trials=p)
+    texts = [str(w.message) for w in caught if issubclass(w.category, InputWarning)]
+    assert sum("t.csv: trials were not in order" in t for t in texts) == 1
+    assert any("t.csv: trials were not in order" in w for w in rec.warnings)
+    unsorted = Recording(unit_ids=["a", "b"], spike_times=[np.array([0.3, 0.1]), np.ones(1)])
+    with pytest.warns(InputWarning, match="not in order"):
+        unsorted.validate()
+    assert any("unit 'a': spike times were not in order" in w for w in unsorted.warnings)
+
+
+# ------------------------------------------------------------------ HDF5 library crashes
+_CRASH_CHILD = """
+import sys
+import numpy as np
+from attractorfit import InputError, load
+from attractorfit.io import write_nwb
+from attractorfit.synthetic import switching_recording
+rec, _ = switching_recording(n_units=4, n_states=2, n_trials=3, rng=0)
+write_nwb(rec, sys.argv[1])
+data = bytearray(open(sys.argv[1], "rb").read())
+data[39449] = 200  # found by benchmarks/bench_fuzz.py: crashed HDF5 1.14 in attrs reads
+open(sys.argv[1], "wb").write(bytes(data))
+try:
+    load(sys.argv[1])
+    print("loaded")
+except InputError as exc:
+    print("InputError", exc)
+"""
+
+
+def test_nwb_that_crashes_the_hdf5_library_is_refused_not_fatal(tmp_path):
+    import subprocess
+    import sys
+
+    env = dict(os.environ, PYTHONPATH=str(SRC.parent))
+    proc = subprocess.run([sys.executable, "-c", _CRASH_CHILD, str(tmp_path / "c.nwb")],
+                          capture_output=True, text=True, env=env, timeout=300)
+    assert proc.returncode == 0, proc.stderr[-2000:]  # -11 was a segmentation fault
+    assert proc.stdout.startswith(("InputError", "loaded"))
+
+
+def test_hdf5_walk_killed_by_a_signal_or_hanging_gives_input_error(tmp_path, monkeypatch):
+    import subprocess
+
+    import attractorfit.io._common as common
+
+    p = tmp_path / "x.nwb"
+    p.write_bytes(b"\x89HDF\r\n\x1a\n" + bytes(100))
+    monkeypatch.setattr(subprocess, "run", lambda *a, **k: subprocess.CompletedProcess(
+        a, -11, b"", b""))
+    with pytest.raises(InputError, match=r"x.nwb: reading the file's HDF5 structure crashed "
+                                         r"the HDF5 library \(signal 11\)"):
+        common.hdf5_preflight(p)
+
+    def hang(*a, **k):
+        raise subprocess.TimeoutExpired(a, 1.0)
+
+    monkeypatch.setattr(subprocess, "run", hang)
+    with pytest.raises(InputError, match="did not finish in"):
+        common.hdf5_preflight(p)

@@ -12,7 +12,8 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from attractorfit._validation import check_spike_times, check_trials, warn_input
+from attractorfit._validation import (check_spike_times, check_trials,
+                                      collect_input_warnings, warn_input)
 from attractorfit.errors import InputError
 
 __all__ = ["Recording", "file_provenance"]
@@ -200,18 +201,21 @@ class Recording:
         if self.n_units < min_units:
             raise InputError(f"{src}: found {self.n_units} unit(s); expected at least "
                              f"{min_units} simultaneously recorded units")
-        self.spike_times = [check_spike_times(t, source=src, unit=u)
-                            for u, t in zip(self.unit_ids, self.spike_times)]
+        sorted_notes: list = []  # "not in order; sorted" warnings, kept for the summary
+        with collect_input_warnings(sorted_notes):
+            self.spike_times = [check_spike_times(t, source=src, unit=u)
+                                for u, t in zip(self.unit_ids, self.spike_times)]
+            if self.trials is not None:
+                self.trials = _check_trial_table(self.trials, src)
         if self.n_spikes == 0:
             raise InputError(f"{src}: the recording contains no spikes; expected spike "
                              "times for at least one unit")
         if self.trials is not None:
-            self.trials = _check_trial_table(self.trials, src)
             _check_trials_cover_spikes(self.spike_times, self.trials, src)
         new = [w for w in self._quality_warnings() if w not in self.warnings]
         for w in new:
             warn_input(w)
-        self.warnings = list(dict.fromkeys(self.warnings + new))
+        self.warnings = list(dict.fromkeys(self.warnings + sorted_notes + new))
         return self
 
     def _quality_warnings(self, *, min_spikes: int = 20) -> list:

@@ -143,6 +143,56 @@ def check_text_size(path, where: str) -> None:
                        what=f"about {rows:.3g} rows of text ({size / 1e9:.3g} GB on disk)")
 
 
+#: Python code run in a child process to walk an HDF5 file before the parent opens it.
+_HDF5_WALK = """
+import sys
+import h5py
+small = int(sys.argv[2])
+def touch(obj):
+    for key in obj.attrs.keys():
+        obj.attrs[key]
+def visit(name, obj):
+    touch(obj)
+    if isinstance(obj, h5py.Dataset) and obj.shape is not None:
+        if obj.size * obj.dtype.itemsize <= small:
+            obj[()]
+with h5py.File(sys.argv[1], "r") as fh:
+    touch(fh)
+    fh.visititems(visit)
+"""
+#: Datasets up to this size (bytes) are read in full by the child walk.
+HDF5_WALK_BYTES = 16 << 20
+#: Seconds the child walk may take before the file is refused.
+HDF5_WALK_TIMEOUT = 120.0
+
+
+def hdf5_preflight(path, label: str | None = None) -> None:
+    """Walk an HDF5 file in a child process before it is opened here.
+
+    A corrupt HDF5 file can crash the HDF5 C library (segmentation fault) while its
+    attributes are read, which would kill this process with no message. The child
+    opens the file read-only, reads every attribute and every dataset up to
+    :data:`HDF5_WALK_BYTES`; if it dies from a signal or hangs, the file is refused
+    with an InputError. A Python-level failure in the child is left to the reader,
+    which reports it. Data of larger datasets is not walked.
+    """
+    import subprocess
+
+    label = label or source_name(path)
+    try:
+        proc = subprocess.run([sys.executable, "-I", "-c", _HDF5_WALK, os.fspath(path),
+                               str(HDF5_WALK_BYTES)], capture_output=True,
+                              timeout=HDF5_WALK_TIMEOUT, check=False)
+    except subprocess.TimeoutExpired:
+        raise InputError(f"{label}: reading the file's HDF5 structure did not finish in "
+                         f"{HDF5_WALK_TIMEOUT:g} s; expected an uncorrupted HDF5 file"
+                         ) from None
+    if proc.returncode < 0:
+        raise InputError(f"{label}: reading the file's HDF5 structure crashed the HDF5 "
+                         f"library (signal {-proc.returncode}); the file is corrupt, "
+                         "expected an uncorrupted HDF5 file")
+
+
 def read_npy_header(fh, where: str):
     """Read the header of one ``.npy`` stream; return (shape, fortran_order, dtype).
 
@@ -237,9 +287,12 @@ def resolve_trials(file_trials, trials_path, *, source: str, time_unit: str,
     """
     if trials_path is None:
         return file_trials
+    from attractorfit._validation import collect_input_warnings
     from attractorfit.io._table import read_trials_table
 
-    table = read_trials_table(trials_path, time_unit=time_unit)
+    with collect_input_warnings([], reemit_input=False) as notes:  # emitted by finish()
+        table = read_trials_table(trials_path, time_unit=time_unit)
+    warnings.extend(notes)
     provenance.extend(provenance_of([os.fspath(trials_path)]))
     if file_trials is not None and len(np.asarray(file_trials.get("start", [])).ravel()):
         warnings.append(f"{source}: its own trials table "

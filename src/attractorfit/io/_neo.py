@@ -8,8 +8,8 @@ import os
 
 from attractorfit.errors import InputError
 from attractorfit.io._common import (SUPPORTED_FORMATS, check_claimed_size, check_file,
-                                     finish, library_errors, provenance_of, resolve_trials,
-                                     source_name, track_reads)
+                                     finish, hdf5_preflight, library_errors, provenance_of,
+                                     resolve_trials, source_name, track_reads)
 from attractorfit.recording import Recording
 
 __all__ = ["read_neo"]
@@ -119,6 +119,7 @@ def _check_hdf5_size(path) -> None:
         if isinstance(obj, h5py.Dataset) and obj.shape is not None:
             total[0] += int(np.prod(obj.shape, dtype=np.float64)) * int(obj.dtype.itemsize)
 
+    hdf5_preflight(path)  # a corrupt file can crash the HDF5 library: try it in a child
     with library_errors(path, "an HDF5 file"):
         with h5py.File(path, "r") as fh:
             fh.visititems(visit)

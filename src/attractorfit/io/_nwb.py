@@ -11,8 +11,8 @@ import numpy as np
 
 from attractorfit.errors import InputError
 from attractorfit.io._common import (check_claimed_size, check_file, finish,
-                                     library_errors, provenance_of, resolve_trials,
-                                     source_name)
+                                     hdf5_preflight, library_errors, provenance_of,
+                                     resolve_trials, source_name)
 from attractorfit.recording import Recording, _natural_sort
 
 __all__ = ["read_nwb", "write_nwb"]
@@ -178,7 +178,9 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
     Raises
     ------
     InputError
-        Not a readable NWB file (missing, empty, truncated, not HDF5), no units table
+        Not a readable NWB file (missing, empty, truncated, not HDF5, or so corrupt
+        that reading it crashes the HDF5 library, which is tried first in a child
+        process), no units table
         or no spike times, a ``unit_column`` that is absent, bad times or trials, fewer
         than two units, no spikes.
 
@@ -193,6 +195,7 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
     warnings: list = []
     from pynwb import NWBHDF5IO
 
+    hdf5_preflight(path)  # a corrupt file can crash the HDF5 library: try it in a child
     with library_errors(path, _EXPECTED):
         nwb_io = NWBHDF5IO(path, mode="r")
     try:
