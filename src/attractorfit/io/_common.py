@@ -187,6 +187,8 @@ def hdf5_preflight(path, label: str | None = None) -> None:
         raise InputError(f"{label}: reading the file's HDF5 structure did not finish in "
                          f"{HDF5_WALK_TIMEOUT:g} s; expected an uncorrupted HDF5 file"
                          ) from None
+    except OSError:  # no usable interpreter to start (embedded Python): no walk
+        return
     if proc.returncode < 0:
         raise InputError(f"{label}: reading the file's HDF5 structure crashed the HDF5 "
                          f"library (signal {-proc.returncode}); the file is corrupt, "
