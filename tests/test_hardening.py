@@ -617,3 +617,19 @@ def test_hdf5_walk_killed_by_a_signal_or_hanging_gives_input_error(tmp_path, mon
     monkeypatch.setattr(subprocess, "run", hang)
     with pytest.raises(InputError, match="did not finish in"):
         common.hdf5_preflight(p)
+
+
+def test_trials_time_unit_resolves_a_mix_of_units(tmp_path, capsys):
+    times, units, trials = _trials_rec()
+    spikes = _write_table(tmp_path / "spikes.csv", times * 1000.0, units)  # milliseconds
+    tr = _write_trials(tmp_path / "trials.csv", trials["start"], trials["stop"])  # seconds
+    rec = load(spikes, trials=tr, time_unit="ms", trials_time_unit="s")
+    np.testing.assert_allclose(rec.trials["stop"], trials["stop"])
+    np.testing.assert_allclose(np.concatenate(rec.spike_times).max(), times.max())
+    with pytest.raises(InputError, match="trials_time_unit: expected 's' or 'ms', got 'h'"):
+        load(spikes, trials=tr, time_unit="ms", trials_time_unit="h")
+    with pytest.raises(InputError, match="trials_time_unit: given .* without a trials table"):
+        load(spikes, time_unit="ms", trials_time_unit="s")
+    code = main(["inspect", str(spikes), "--trials", str(tr), "--time-unit", "ms",
+                 "--trials-time-unit", "s", "--json"])
+    assert code == 0 and '"n_trials": 8' in capsys.readouterr().out

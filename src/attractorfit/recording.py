@@ -426,10 +426,10 @@ def _check_trials_cover_spikes(spike_times, trials: dict, src: str) -> None:
                     f"apart: the spike times look like {spike_word} and the trial times "
                     f"like {trial_word} ({n_in / n_total:.0%} of the spikes fall inside "
                     f"trials as read, {n_scaled / n_total:.0%} with the spike times {how}); "
-                    "expected one time unit for both: give the unit of plain-number times "
-                    "with the loader's time_unit option ('s' or 'ms'; command line "
-                    "--time-unit), which applies to spike tables, NPZ arrays and the "
-                    "trials table, or convert one of the files")
+                    "expected one time unit for both: give the units with the loader "
+                    "options time_unit (spike tables, NPZ arrays) and trials_time_unit "
+                    "(the trials table), 's' or 'ms' (command line --time-unit, "
+                    "--trials-time-unit)")
     if n_in == 0:
         raise InputError(f"{src}: none of the {n_total} spikes "
                          f"({min(float(t[0]) for t in spike_times if len(t)):g}-{spike_end:g} s) "

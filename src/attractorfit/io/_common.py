@@ -281,19 +281,26 @@ def provenance_of(paths) -> list:
 
 # ------------------------------------------------------------------ assembly
 def resolve_trials(file_trials, trials_path, *, source: str, time_unit: str,
-                   provenance: list, warnings: list):
+                   provenance: list, warnings: list, trials_time_unit: str | None = None):
     """Pick the trials table: the one given with ``trials=`` wins over the file's own.
 
     Appends the trials file's provenance and, when it overrides trials found in the
-    recording, a warning saying so.
+    recording, a warning saying so. The table's times are in ``trials_time_unit``
+    (default: ``time_unit``).
     """
+    if trials_time_unit is not None and (not isinstance(trials_time_unit, str)
+                                         or trials_time_unit not in TIME_UNITS):
+        raise InputError(f"trials_time_unit: expected 's' or 'ms', got {trials_time_unit!r}")
     if trials_path is None:
+        if trials_time_unit is not None:
+            raise InputError(f"trials_time_unit: given ({trials_time_unit!r}) without a "
+                             "trials table; expected it with the option trials=")
         return file_trials
     from attractorfit._validation import collect_input_warnings
     from attractorfit.io._table import read_trials_table
 
     with collect_input_warnings([], reemit_input=False) as notes:  # emitted by finish()
-        table = read_trials_table(trials_path, time_unit=time_unit)
+        table = read_trials_table(trials_path, time_unit=trials_time_unit or time_unit)
     warnings.extend(notes)
     provenance.extend(provenance_of([os.fspath(trials_path)]))
     if file_trials is not None and len(np.asarray(file_trials.get("start", [])).ravel()):

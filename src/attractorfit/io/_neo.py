@@ -132,7 +132,8 @@ def _has_trials_epoch(block) -> bool:
                for ep in seg.epochs)
 
 
-def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
+def read_neo(path, *, trials=None, time_unit: str = "s",
+             trials_time_unit: str | None = None) -> Recording:
     """Read a file or folder through neo's IO classes (NIX, Spike2, Plexon, Blackrock...).
 
     The candidate IO classes come from the path's suffix (or a folder's contents)
@@ -148,6 +149,8 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
         A trials table (see :func:`read_trials_table`) that replaces the file's trials.
     time_unit : {'s', 'ms'}
         Unit of the times in the ``trials`` table (neo carries its own units).
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
 
     Returns
     -------
@@ -204,5 +207,6 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
         warnings.append(f"{name}: no 'trials' epoch; each of the {len(block.segments)} "
                         "segments became a trial")
     rec.trials = resolve_trials(rec.trials, trials, source=name, time_unit=time_unit,
+                                trials_time_unit=trials_time_unit,
                                 provenance=rec.provenance, warnings=warnings)
     return finish(rec.validate(), warnings)

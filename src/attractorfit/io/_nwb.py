@@ -152,7 +152,7 @@ def _interval_columns(table, name: str, warnings: list) -> dict | None:
 
 
 def read_nwb(path, *, unit_column: str | None = None, trials=None,
-             time_unit: str = "s") -> Recording:
+             time_unit: str = "s", trials_time_unit: str | None = None) -> Recording:
     """Read units and trials from an NWB file with pynwb (read-only).
 
     Parameters
@@ -166,6 +166,8 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
         A trials table (see :func:`read_trials_table`) that replaces the file's.
     time_unit : {'s', 'ms'}
         Unit of the times in the ``trials`` table (NWB times are always seconds).
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
 
     Returns
     -------
@@ -222,6 +224,7 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
             nwb_io.close()
     provenance = provenance_of([path])
     trials_table = resolve_trials(file_trials, trials, source=name, time_unit=time_unit,
+                                  trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
     order = {u: k for k, u in enumerate(ids)}
     ids = _natural_sort(ids) if len(set(ids)) == len(ids) else ids  # same order as others

@@ -126,7 +126,8 @@ def _cluster_labels(folder, used: list, warnings: list) -> dict:
 
 
 def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
-                       trials=None, time_unit: str = "s") -> Recording:
+                       trials=None, time_unit: str = "s",
+                       trials_time_unit: str | None = None) -> Recording:
     """Read a spike-sorter output folder.
 
     Parameters
@@ -145,6 +146,8 @@ def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
         A trials table (see :func:`read_trials_table`); a folder has none of its own.
     time_unit : {'s', 'ms'}
         Unit of the trials table's times.
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
 
     Returns
     -------
@@ -248,6 +251,7 @@ def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
                 "cluster_labels": {str(c): labels.get(str(c), "") for c in ids}}
     provenance = provenance_of(used)
     trials_table = resolve_trials(None, trials, source=name, time_unit=time_unit,
+                                  trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
     rec = Recording.from_arrays(times, clusters, trials=trials_table,
                                 unit_ids=[str(c) for c in ids], metadata=metadata,

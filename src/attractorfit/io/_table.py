@@ -250,7 +250,7 @@ def read_trials_table(path, *, time_unit: str = "s", start_column: str = "start"
 
 def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
                time_unit: str = "s", delimiter: str | None = None,
-               trials=None) -> Recording:
+               trials=None, trials_time_unit: str | None = None) -> Recording:
     """Read a spike table: one row per spike, a unit column and a time column.
 
     Parameters
@@ -261,6 +261,8 @@ def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
         Header names of the unit label and spike time columns.
     time_unit : {'s', 'ms'}
         Unit of the time column (and of the trials table, if given).
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
     delimiter : str, optional
         Field delimiter; default from the suffix (``.csv`` comma, ``.tsv``/``.tab``
         tab) or sniffed from the first lines (``.txt`` and others).
@@ -309,6 +311,7 @@ def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
     warnings: list = []
     provenance = provenance_of([path])
     trials_table = resolve_trials(None, trials, source=name, time_unit=time_unit,
+                                  trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
     rec = Recording.from_arrays(times, np.array(units, dtype=str), trials=trials_table,
                                 metadata={"format": "table", "time_unit": time_unit},
