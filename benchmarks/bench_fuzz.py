@@ -110,19 +110,23 @@ def fuzz(n, n_files=None):
     with open(good, "rb") as fh:
         nwb_bytes = fh.read()
 
-    @cfg_files
-    @given(pos=st.lists(st.integers(0, len(nwb_bytes) - 1), min_size=1, max_size=8),
-           val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(nwb_bytes))))
-    def nwb(pos, val, cut):
-        b = bytearray(nwb_bytes)
-        for i in pos:
-            b[i] = val
-        if cut is not None:
-            b = b[:cut]
-        p = os.path.join(tmp, "mut.nwb")
-        with open(p, "wb") as fh:
-            fh.write(bytes(b))
-        _attempt("nwb (mutated)", lambda: load(p))
+    def mutated_file_target(base: bytes, name: str, target: str):
+        """A fuzz target loading ``base`` with bytes overwritten and an optional cut."""
+        @cfg_files
+        @given(pos=st.lists(st.integers(0, len(base) - 1), min_size=1, max_size=8),
+               val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(base))))
+        def run(pos, val, cut):
+            b = bytearray(base)
+            for i in pos:
+                b[i] = val
+            p = os.path.join(tmp, name)
+            with open(p, "wb") as fh:
+                fh.write(bytes(b if cut is None else b[:cut]))
+            _attempt(target, lambda: load(p))
+        run.__name__ = target.split()[0]
+        return run
+
+    nwb = mutated_file_target(nwb_bytes, "mut.nwb", "nwb (mutated)")
 
     keys = st.sampled_from(["analysis", "states", "network", "compare", "report", "run", "x"])
     names = st.sampled_from(["bin_size", "window", "n_states", "max_states", "rule", "dt",
@@ -173,19 +177,7 @@ def fuzz(n, n_files=None):
     with open(nix, "rb") as fh:
         nix_bytes = fh.read()
 
-    @cfg_files
-    @given(pos=st.lists(st.integers(0, len(nix_bytes) - 1), min_size=1, max_size=8),
-           val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(nix_bytes))))
-    def nix_file(pos, val, cut):
-        b = bytearray(nix_bytes)
-        for i in pos:
-            b[i] = val
-        if cut is not None:
-            b = b[:cut]
-        p = os.path.join(tmp, "mut.nix")
-        with open(p, "wb") as fh:
-            fh.write(bytes(b))
-        _attempt("nix (mutated)", lambda: load(p))
+    nix_file = mutated_file_target(nix_bytes, "mut.nix", "nix (mutated)")
 
     @cfg
     @given(data=st.data())

@@ -449,16 +449,26 @@ def _load_or_input_error(path, **kw):
             pass
 
 
-@_FUZZ
-@given(data=st.data())
-def test_any_mutated_nwb_loads_or_raises_input_error(tmp_path_factory, nwb_bytes, data):
-    b = bytearray(nwb_bytes)
+def _load_mutated(data, base: bytes, path) -> None:
+    """Overwrite a few bytes of ``base`` (and maybe cut it), write it to ``path``, load."""
+    b = bytearray(base)
     for i in data.draw(st.lists(st.integers(0, len(b) - 1), min_size=1, max_size=6)):
         b[i] = data.draw(st.integers(0, 255))
     cut = data.draw(st.one_of(st.none(), st.integers(0, len(b))))
-    p = tmp_path_factory.mktemp("mut") / "m.nwb"
-    p.write_bytes(bytes(b if cut is None else b[:cut]))
-    _load_or_input_error(p)
+    path.write_bytes(bytes(b if cut is None else b[:cut]))
+    _load_or_input_error(path)
+
+
+# each HDF5 file is first walked in a child process (~0.3 s): few examples here, many in
+# benchmarks/bench_fuzz.py
+_FUZZ_FILES = settings(max_examples=8, deadline=None, database=None,
+                       suppress_health_check=list(HealthCheck))
+
+
+@_FUZZ_FILES
+@given(data=st.data())
+def test_any_mutated_nwb_loads_or_raises_input_error(tmp_path_factory, nwb_bytes, data):
+    _load_mutated(data, nwb_bytes, tmp_path_factory.mktemp("mut") / "m.nwb")
 
 
 _PARAMS = st.one_of(
@@ -524,17 +534,10 @@ def nix_bytes(tmp_path_factory):
     return p.read_bytes()
 
 
-@settings(max_examples=12, deadline=None, database=None,
-          suppress_health_check=list(HealthCheck))
+@_FUZZ_FILES
 @given(data=st.data())
 def test_any_mutated_nix_file_loads_or_raises_input_error(tmp_path_factory, nix_bytes, data):
-    b = bytearray(nix_bytes)
-    for i in data.draw(st.lists(st.integers(0, len(b) - 1), min_size=1, max_size=6)):
-        b[i] = data.draw(st.integers(0, 255))
-    cut = data.draw(st.one_of(st.none(), st.integers(0, len(b))))
-    p = tmp_path_factory.mktemp("mutnix") / "m.nix"
-    p.write_bytes(bytes(b if cut is None else b[:cut]))
-    _load_or_input_error(p)
+    _load_mutated(data, nix_bytes, tmp_path_factory.mktemp("mutnix") / "m.nix")
 
 
 # ------------------------------------------------------------------ atomic outputs
