@@ -636,3 +636,19 @@ def test_trials_time_unit_resolves_a_mix_of_units(tmp_path, capsys):
     code = main(["inspect", str(spikes), "--trials", str(tr), "--time-unit", "ms",
                  "--trials-time-unit", "s", "--json"])
     assert code == 0 and '"n_trials": 8' in capsys.readouterr().out
+
+
+def test_sorter_folder_side_files_are_size_checked(tmp_path, monkeypatch):
+    import attractorfit.io._common as common
+
+    np.save(tmp_path / "spike_times.npy", np.arange(40, dtype=np.int64) * 100)
+    np.save(tmp_path / "spike_clusters.npy", np.arange(40, dtype=np.int64) % 2)
+    (tmp_path / "params.py").write_text("sample_rate = 1000.0\n" + "#" * (1 << 20))
+    with pytest.raises(InputError, match=r"params.py: \d+ bytes; expected a small settings "
+                                         "file"):
+        load(tmp_path)
+    (tmp_path / "params.py").write_text("sample_rate = 1000.0\n")
+    (tmp_path / "cluster_group.tsv").write_text("cluster_id\tgroup\n0\tgood\n1\tgood\n" * 50)
+    monkeypatch.setattr(common, "available_memory", lambda: 4096)
+    with pytest.raises(InputError, match="cluster_group.tsv: the file claims about .* rows"):
+        load(tmp_path)

@@ -16,8 +16,8 @@ import numpy as np
 
 from attractorfit._validation import check_positive
 from attractorfit.errors import InputError
-from attractorfit.io._common import (check_file, finish, load_npy, provenance_of,
-                                     resolve_trials, source_name)
+from attractorfit.io._common import (check_file, check_text_size, finish, load_npy,
+                                     provenance_of, resolve_trials, source_name)
 from attractorfit.io._table import _find_column, _header, _rows
 from attractorfit.recording import Recording
 
@@ -27,6 +27,8 @@ _RATE_KEYS = ("sample_rate", "sampling_rate")
 #: Label files in increasing priority: a later file overrides an earlier one.
 _LABEL_FILES = ("cluster_info.tsv", "cluster_group.tsv")
 _LABEL_COLUMNS = ("group", "KSLabel", "label")
+#: Largest params.py read (a settings file of a few lines; anything bigger is refused).
+PARAMS_MAX_BYTES = 1 << 20
 
 
 def _read_params(path) -> tuple[dict, dict]:
@@ -48,9 +50,14 @@ def _read_params(path) -> tuple[dict, dict]:
     Raises
     ------
     InputError
-        The file is not valid Python text.
+        The file is larger than :data:`PARAMS_MAX_BYTES` or not valid Python text.
     """
     name = source_name(path)
+    size = os.path.getsize(path)
+    if size > PARAMS_MAX_BYTES:
+        raise InputError(f"{name}: {size} bytes; expected a small settings file (at most "
+                         f"{PARAMS_MAX_BYTES} bytes) with assignments such as "
+                         "'sample_rate = 30000.0'")
     try:
         with open(path, "rb") as fh:
             text = fh.read()
@@ -99,6 +106,7 @@ def _cluster_labels(folder, used: list, warnings: list) -> dict:
         if os.path.getsize(path) == 0:
             warnings.append(f"{fname}: empty file ignored")
             continue
+        check_text_size(path, fname)
         rows = _rows(path, "\t")
         hline, header = _header(path, rows, what="columns 'cluster_id' and a label "
                                                  "column such as 'group'")
