@@ -1,10 +1,15 @@
 """Longer fuzz run of every loader and the configuration parser (hypothesis).
 
+Targets: spike tables (text and raw bytes), NPZ archives, mutated NWB files, sorter
+folders (params.py, .npy arrays, cluster labels), mutated NIX files (through neo),
+recordings with arbitrary trials (assembly and binning: coverage, time-unit and silent-
+unit checks), and configuration files.
+
 Any input must either load or raise attractorfit's InputError; anything else is a crash.
 Prints, per target, the number of inputs tried and the crashes found (with the first
 failing input's exception), and exits 1 if any target crashed.
 
-    python benchmarks/bench_fuzz.py [--examples 2000]
+    python benchmarks/bench_fuzz.py [--examples 2000] [--file-examples 500]
 """
 
 from __future__ import annotations
@@ -24,6 +29,8 @@ from hypothesis import strategies as st
 from attractorfit.config import load_config
 from attractorfit.errors import InputError
 from attractorfit.io import load, write_nwb
+from attractorfit.binning import bin_spikes
+from attractorfit.recording import Recording
 from attractorfit.synthetic import switching_recording
 
 COUNTS = {}
@@ -59,10 +66,13 @@ def tables(draw):
     return head + "\n" + "\n".join(sep.join(r) for r in rows)
 
 
-def fuzz(n):
+def fuzz(n, n_files=None):
     tmp = tempfile.mkdtemp(prefix="af-fuzz-")
     cfg = settings(max_examples=n, deadline=None, database=None,
                    suppress_health_check=list(HealthCheck))
+    # HDF5 targets cost more per input (each file is first walked in a child process)
+    cfg_files = settings(max_examples=n_files or n, deadline=None, database=None,
+                         suppress_health_check=list(HealthCheck))
 
     @cfg
     @given(text=tables(), suffix=st.sampled_from([".csv", ".tsv", ".txt"]))
@@ -100,19 +110,23 @@ def fuzz(n):
     with open(good, "rb") as fh:
         nwb_bytes = fh.read()
 
-    @cfg
-    @given(pos=st.lists(st.integers(0, len(nwb_bytes) - 1), min_size=1, max_size=8),
-           val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(nwb_bytes))))
-    def nwb(pos, val, cut):
-        b = bytearray(nwb_bytes)
-        for i in pos:
-            b[i] = val
-        if cut is not None:
-            b = b[:cut]
-        p = os.path.join(tmp, "mut.nwb")
-        with open(p, "wb") as fh:
-            fh.write(bytes(b))
-        _attempt("nwb (mutated)", lambda: load(p))
+    def mutated_file_target(base: bytes, name: str, target: str):
+        """A fuzz target loading ``base`` with bytes overwritten and an optional cut."""
+        @cfg_files
+        @given(pos=st.lists(st.integers(0, len(base) - 1), min_size=1, max_size=8),
+               val=st.integers(0, 255), cut=st.one_of(st.none(), st.integers(0, len(base))))
+        def run(pos, val, cut):
+            b = bytearray(base)
+            for i in pos:
+                b[i] = val
+            p = os.path.join(tmp, name)
+            with open(p, "wb") as fh:
+                fh.write(bytes(b if cut is None else b[:cut]))
+            _attempt(target, lambda: load(p))
+        run.__name__ = target.split()[0]
+        return run
+
+    nwb = mutated_file_target(nwb_bytes, "mut.nwb", "nwb (mutated)")
 
     keys = st.sampled_from(["analysis", "states", "network", "compare", "report", "run", "x"])
     names = st.sampled_from(["bin_size", "window", "n_states", "max_states", "rule", "dt",
@@ -132,18 +146,73 @@ def fuzz(n):
             fh.write(text)
         _attempt("config", lambda: load_config(p))
 
-    for f in (table, table_bytes, npz, nwb, config):
-        t = time.perf_counter()
+    params = st.one_of(
+        st.sampled_from(["sample_rate = 30000.0", "sample_rate = 0", "sample_rate = 'x'",
+                         "sample_rate = __import__('os').system('false')",
+                         "sample_rate = float('nan')", "sample_rate = (", "\x00",
+                         "sample_rate = 1e400", "import os\nsample_rate = 1e3"]),
+        st.text(max_size=40))
+
+    @cfg
+    @given(par=params, times=arrays, clusters=arrays,
+           group=st.one_of(st.none(), st.text(max_size=30)))
+    def sorter(par, times, clusters, group):
+        d = tempfile.mkdtemp(dir=tmp)
+        with open(os.path.join(d, "params.py"), "w", encoding="utf-8",
+                  errors="surrogatepass") as fh:
+            fh.write(par)
+        np.save(os.path.join(d, "spike_times.npy"), times)
+        np.save(os.path.join(d, "spike_clusters.npy"), clusters)
+        if group is not None:
+            with open(os.path.join(d, "cluster_group.tsv"), "w", encoding="utf-8",
+                      errors="surrogatepass") as fh:
+                fh.write("cluster_id\tgroup\n" + group)
+        _attempt("sorter folder", lambda: load(d, good_only=bool(group)))
+
+    from neo.io import NixIO
+
+    nix = os.path.join(tmp, "good.nix")
+    with NixIO(nix, mode="ow") as io_:
+        io_.write_block(rec.to_neo())
+    with open(nix, "rb") as fh:
+        nix_bytes = fh.read()
+
+    nix_file = mutated_file_target(nix_bytes, "mut.nix", "nix (mutated)")
+
+    @cfg
+    @given(data=st.data())
+    def recording(data):
+        n = data.draw(st.integers(0, 60))
+        scale = data.draw(st.sampled_from([1e-3, 1.0, 1e3]))
+        times = np.array(data.draw(st.lists(st.floats(0, 100), min_size=n, max_size=n)))
+        units = np.array(data.draw(st.lists(st.integers(0, 3), min_size=n, max_size=n)))
+        k = data.draw(st.integers(1, 6))
+        start = np.array(data.draw(st.lists(st.floats(0, 100), min_size=k, max_size=k)))
+        dur = np.array(data.draw(st.lists(st.floats(0, 20), min_size=k, max_size=k)))
+        bin_size = data.draw(st.sampled_from([0.01, 0.5, 5.0]))
+        min_rate = data.draw(st.sampled_from([0.0, 0.5, 50.0]))
+
+        def go():
+            r = Recording.from_arrays(times * scale, units,
+                                      trials={"start": start, "stop": start + dur})
+            bin_spikes(r, bin_size=bin_size, min_rate_hz=min_rate)
+        _attempt("recording+binning", go)
+
+    for f in (table, table_bytes, npz, nwb, sorter, nix_file, recording, config):
+        t, c = time.perf_counter(), time.process_time()
         f()
         name = f.__name__
-        print(f"{name:<14} done in {time.perf_counter() - t:6.1f} s", flush=True)
+        print(f"{name:<14} done in {time.perf_counter() - t:6.1f} s wall, "
+              f"{time.process_time() - c:6.1f} s CPU", flush=True)
 
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--examples", type=int, default=2000, help="examples per target")
+    ap.add_argument("--file-examples", type=int, default=None,
+                    help="examples for the NWB and NIX targets (default: --examples)")
     args = ap.parse_args()
-    fuzz(args.examples)
+    fuzz(args.examples, args.file_examples)
     print()
     print(f"{'target':<16}{'inputs tried':>14}{'crashes':>10}")
     for k, n in COUNTS.items():

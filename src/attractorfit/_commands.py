@@ -167,6 +167,8 @@ def _add_load_options(p) -> None:
                         "columns) when the trials are not inside the recording file")
     p.add_argument("--time-unit", choices=["s", "ms"], default=None,
                    help="unit of the spike times in a CSV/TSV table (default: seconds)")
+    p.add_argument("--trials-time-unit", choices=["s", "ms"], default=None,
+                   help="unit of the --trials table when it differs from --time-unit")
     p.add_argument("--sampling-rate", type=float, default=None, metavar="HZ",
                    help="sampling rate of a sorter folder's spike_times.npy when its "
                         "params.py does not give it")
@@ -238,6 +240,8 @@ def _load_options(args) -> dict:
         options["trials"] = args.trials
     if getattr(args, "time_unit", None):
         options["time_unit"] = args.time_unit
+    if getattr(args, "trials_time_unit", None):
+        options["trials_time_unit"] = args.trials_time_unit
     if getattr(args, "sampling_rate", None):
         options["sampling_rate"] = args.sampling_rate
     if getattr(args, "good_only", False):

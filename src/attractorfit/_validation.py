@@ -6,6 +6,7 @@ message names the source (file or parameter), the rule and the offending value.
 
 from __future__ import annotations
 
+import contextlib
 import math
 import warnings
 from numbers import Integral, Real
@@ -24,12 +25,34 @@ __all__ = [
     "check_rng",
     "check_array",
     "warn_input",
+    "collect_input_warnings",
 ]
 
 
 def warn_input(message: str) -> None:
     """Emit an :class:`InputWarning` pointing at the caller's caller."""
     warnings.warn(message, InputWarning, stacklevel=3)
+
+
+@contextlib.contextmanager
+def collect_input_warnings(into: list, *, reemit_input: bool = True):
+    """Run a block and append the text of each InputWarning it emits to ``into``.
+
+    Every other warning is re-emitted as it was; InputWarnings too unless
+    ``reemit_input`` is False (for a caller that emits them later itself).
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield into
+        finally:
+            pending = list(caught)
+    for w in pending:
+        is_input = issubclass(w.category, InputWarning)
+        if is_input:
+            into.append(str(w.message))
+        if reemit_input or not is_input:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
 
 
 def _is_real(value) -> bool:

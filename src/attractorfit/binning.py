@@ -206,8 +206,8 @@ def analysis_windows(recording: Recording, *, window=(None, None), align=None,
 
 
 def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, None),
-               align=None, min_rate_hz: float = 0.0, continuous_window_s: float = 10.0
-               ) -> BinnedCounts:
+               align=None, min_rate_hz: float = 0.0, continuous_window_s: float = 10.0,
+               drop_silent: bool = True) -> BinnedCounts:
     """Count spikes of each unit in bins of each trial's analysis window.
 
     Parameters
@@ -221,7 +221,14 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
     align : str, optional
         Trials-table column to align on (default: trial start).
     min_rate_hz : float
-        Units whose mean rate inside the analysis windows is below this are dropped.
+        Units whose mean rate inside the analysis windows is below this are dropped
+        (with an InputWarning). Units without any spike inside the windows are always
+        dropped (with an InputWarning), whatever ``min_rate_hz``: a unit that never
+        fires has no rate for a state model to estimate. Dropped units are absent from
+        ``unit_ids`` / ``unit_index`` and so from every later stage.
+    drop_silent : bool
+        ``False`` keeps units without spikes (used to bin surrogate recordings unit for
+        unit like the data); the default drops them as described above.
     continuous_window_s : float
         Window length standing in for trials when there are none.
 
@@ -233,7 +240,7 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
     ------
     InputError
         Non-positive bin size, a window shorter than one bin, or fewer than two units
-        left after the rate filter.
+        left after dropping silent and slow units.
 
     Notes
     -----
@@ -272,17 +279,27 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
     if not pseudo:
         labels = {c: recording.trials[c][tidx] for c in recording.label_columns}
     rate = counts.sum(axis=(0, 1), dtype=np.float64) / (n_valid.sum() * bin_size)
-    keep = rate >= min_rate_hz
+    silent = (rate == 0) if drop_silent else np.zeros(n_units, dtype=bool)
+    slow = ~silent & (rate < min_rate_hz)
+    keep = ~silent & ~slow
+    later = "left out of the state model and of every later stage"
+    if silent.any():
+        first = recording.unit_ids[int(np.flatnonzero(silent)[0])]
+        warn_input(f"{recording.source}: {int(silent.sum())} unit(s) have no spikes inside "
+                   f"the analysis windows (first: {first!r}); {later}")
+    if slow.any():
+        i = int(np.flatnonzero(slow)[0])
+        warn_input(f"{recording.source}: {int(slow.sum())} unit(s) fire below min_rate_hz = "
+                   f"{min_rate_hz:g} Hz inside the analysis windows (first: "
+                   f"{recording.unit_ids[i]!r}, {rate[i]:.3g} Hz); {later}")
     if keep.sum() < 2:
-        raise InputError(f"min_rate_hz: only {int(keep.sum())} unit(s) reach {min_rate_hz:g} "
-                         "Hz inside the analysis windows; expected at least 2")
+        raise InputError(f"min_rate_hz: only {int(keep.sum())} of {n_units} unit(s) fire "
+                         f"inside the analysis windows at {min_rate_hz:g} Hz or more "
+                         f"({int(silent.sum())} without any spike there); expected at least "
+                         "2 units")
     unit_index = np.flatnonzero(keep)
     if not keep.all():
         counts = np.ascontiguousarray(counts[:, :, keep])
-    silent = [recording.unit_ids[i] for i in unit_index if rate[i] == 0]
-    if silent:
-        warn_input(f"{recording.source}: {len(silent)} unit(s) have no spikes inside the "
-                   f"analysis windows (first: {silent[0]!r})")
     return BinnedCounts(counts=counts, n_valid=n_valid, bin_size=bin_size,
                         unit_ids=[recording.unit_ids[i] for i in unit_index],
                         unit_index=unit_index, trial_index=np.asarray(tidx),

@@ -17,7 +17,7 @@ from typing import Any, Callable
 from attractorfit.errors import InputError
 
 __all__ = ["Param", "PARAMETERS", "default_config", "load_config", "resolve_config",
-           "dumps_config"]
+           "dumps_config", "check_config_for_data"]
 
 
 @dataclass(frozen=True)
@@ -192,6 +192,34 @@ def resolve_config(overrides: dict | None, *, source: str = "configuration") -> 
         raise InputError(f"{source}: states.n_states = 1; expected 0 (choose) or at least 2 "
                          "states")
     return cfg
+
+
+def check_config_for_data(cfg: dict, *, n_units: int, source: str = "configuration") -> None:
+    """Check the settings whose range depends on the data (after binning).
+
+    Parameters
+    ----------
+    cfg : dict
+        A resolved configuration.
+    n_units : int
+        Units left for the analysis after binning.
+    source : str
+        Name used in messages.
+
+    Raises
+    ------
+    InputError
+        ``states.latent_dims`` not below the number of units, or an integer
+        ``network.rank`` above it.
+    """
+    dims = cfg["states"]["latent_dims"]
+    if dims and dims >= n_units:
+        raise InputError(f"{source}: states.latent_dims = {dims}; expected fewer latent "
+                         f"dimensions than the {n_units} units analysed (or 0 to choose)")
+    rank = cfg["network"]["rank"]
+    if rank != "full" and rank and rank > n_units:
+        raise InputError(f"{source}: network.rank = {rank}; expected at most the {n_units} "
+                         "units analysed (or 0 for the state model's code length)")
 
 
 def load_config(path) -> dict:

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from attractorfit._output import atomic_writer, write_csv, write_json
-from attractorfit.config import dumps_config, resolve_config
+from attractorfit.config import check_config_for_data, dumps_config, resolve_config
 from attractorfit.errors import InputError
 
 log = logging.getLogger("attractorfit")
@@ -201,6 +201,7 @@ def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int
     state_seed, disc_seed = np.random.SeedSequence(seed).spawn(2)
     with _deterministic_threads():
         binned = bin_for_analysis(recording, cfg)
+        check_config_for_data(cfg, n_units=binned.n_units)
         cond = _condition_column(binned, cfg)
         analysed = analysed_counts(binned)
         st = cfg["states"]

@@ -12,7 +12,8 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from attractorfit._validation import check_spike_times, check_trials, warn_input
+from attractorfit._validation import (check_spike_times, check_trials,
+                                      collect_input_warnings, warn_input)
 from attractorfit.errors import InputError
 
 __all__ = ["Recording", "file_provenance"]
@@ -178,7 +179,18 @@ class Recording:
         ------
         InputError
             Fewer than ``min_units`` units, no spikes, duplicate unit ids, bad spike
-            times (non-finite, negative) or bad trials (stop <= start, overlap).
+            times (non-finite, negative), bad trials (stop <= start, overlap), spike
+            times and trial times in different units (about 1000x apart: milliseconds
+            mixed with seconds), or no spike inside any trial.
+
+        Warns
+        -----
+        InputWarning
+            Each new quality warning (also kept in :attr:`warnings`): spike times out
+            of order (sorted), duplicated spike times (kept), trials out of order
+            (sorted), times that look like milliseconds, units with few spikes,
+            refractory violations, spikes outside every trial (with the fraction; they
+            are left out of the analysis), trials with no spike from any unit (kept).
         """
         src = self.source
         if len(set(self.unit_ids)) != len(self.unit_ids):
@@ -189,14 +201,21 @@ class Recording:
         if self.n_units < min_units:
             raise InputError(f"{src}: found {self.n_units} unit(s); expected at least "
                              f"{min_units} simultaneously recorded units")
-        self.spike_times = [check_spike_times(t, source=src, unit=u)
-                            for u, t in zip(self.unit_ids, self.spike_times)]
+        sorted_notes: list = []  # "not in order; sorted" warnings, kept for the summary
+        with collect_input_warnings(sorted_notes):
+            self.spike_times = [check_spike_times(t, source=src, unit=u)
+                                for u, t in zip(self.unit_ids, self.spike_times)]
+            if self.trials is not None:
+                self.trials = _check_trial_table(self.trials, src)
         if self.n_spikes == 0:
             raise InputError(f"{src}: the recording contains no spikes; expected spike "
                              "times for at least one unit")
         if self.trials is not None:
-            self.trials = _check_trial_table(self.trials, src)
-        self.warnings = list(dict.fromkeys(self.warnings + self._quality_warnings()))
+            _check_trials_cover_spikes(self.spike_times, self.trials, src)
+        new = [w for w in self._quality_warnings() if w not in self.warnings]
+        for w in new:
+            warn_input(w)
+        self.warnings = list(dict.fromkeys(self.warnings + sorted_notes + new))
         return self
 
     def _quality_warnings(self, *, min_spikes: int = 20) -> list:
@@ -208,16 +227,17 @@ class Recording:
         if tmax > 1e4 and med_isi > 1.0:
             out.append(f"{src}: spike times reach {tmax:g} with a median inter-spike "
                        f"interval of {med_isi:g}; they look like milliseconds, expected "
-                       "seconds (use the milliseconds option of the loader)")
+                       "seconds (load with time_unit='ms', command line --time-unit ms)")
         few = [u for u, t in zip(self.unit_ids, self.spike_times) if len(t) < min_spikes]
         if few:
             out.append(f"{src}: {len(few)} unit(s) have fewer than {min_spikes} spikes "
                        f"(first: {few[0]!r})")
-        dup_units = [u for u, t in zip(self.unit_ids, self.spike_times)
-                     if len(t) > 1 and np.any(np.diff(t) == 0)]
+        n_dup = [int(np.sum(np.diff(t) == 0)) if len(t) > 1 else 0 for t in self.spike_times]
+        dup_units = [u for u, n in zip(self.unit_ids, n_dup) if n]
         if dup_units:
             out.append(f"{src}: {len(dup_units)} unit(s) have duplicated spike times "
-                       f"(first: {dup_units[0]!r})")
+                       f"({sum(n_dup)} repeats; first: unit {dup_units[0]!r}); kept, so each "
+                       "copy counts as a spike (check the sorting if this is unexpected)")
         contaminated = [u for u, t in zip(self.unit_ids, self.spike_times)
                         if len(t) > 1 and np.mean(np.diff(t) < REFRACTORY_S) > 0.01]
         if contaminated:
@@ -226,14 +246,18 @@ class Recording:
                        f"multi-unit activity or contamination (first: {contaminated[0]!r})")
         if self.trials is not None and self.n_trials:
             start, stop = self.trials["start"], self.trials["stop"]
-            outside = 0
-            for t in self.spike_times:
-                k = np.searchsorted(start, t, side="right") - 1
-                inside = (k >= 0) & (t < stop[np.clip(k, 0, None)])
-                outside += int(np.sum(~inside))
+            per_trial = spikes_per_trial(self.spike_times, start, stop)
+            outside = self.n_spikes - int(per_trial.sum())
             if outside:
-                out.append(f"{src}: {outside} of {self.n_spikes} spikes fall outside all "
-                           "trials")
+                out.append(f"{src}: {outside} of {self.n_spikes} spikes "
+                           f"({outside / self.n_spikes:.1%}) fall outside all trials; they "
+                           "are left out of the analysis")
+            empty = np.flatnonzero(per_trial == 0)
+            if empty.size:
+                i = int(empty[0])
+                out.append(f"{src}: {empty.size} of {self.n_trials} trial(s) hold no spike "
+                           f"from any unit (first: trial {i} in start order, "
+                           f"{start[i]:g}-{stop[i]:g} s); kept, as silent bins")
         return out
 
     # -------------------------------------------------------------- selection
@@ -348,6 +372,70 @@ def _natural_sort(labels: list) -> list:
         return sorted(labels, key=lambda s: (int(s), s))
     except (TypeError, ValueError):
         return sorted(labels)
+
+
+#: Span ratios (last spike / last trial stop, or its inverse) read as the tell-tale of
+#: milliseconds mixed with seconds (a factor 1000, give or take the gaps at the ends).
+MIXED_UNIT_RATIO = (200.0, 5000.0)
+
+
+def spikes_per_trial(spike_times, start, stop) -> np.ndarray:
+    """Number of spikes (all units) in each trial ``[start, stop)``; trials disjoint."""
+    start = np.asarray(start, dtype=np.float64)
+    stop = np.asarray(stop, dtype=np.float64)
+    n = np.zeros(start.size, dtype=np.int64)
+    for t in spike_times:
+        if len(t):
+            n += np.searchsorted(t, stop, side="left") - np.searchsorted(t, start, side="left")
+    return n
+
+
+def _check_trials_cover_spikes(spike_times, trials: dict, src: str) -> None:
+    """Refuse trials that share no time with the spikes; name a time-unit mix-up.
+
+    A spike-time span about 1000 times the trial span (or a thousandth of it) with
+    few spikes inside the trials, that would mostly fall inside them once converted,
+    is milliseconds mixed with seconds: an InputError pointing at ``time_unit``.
+    Otherwise, no spike inside any trial is an InputError too (nothing to analyse).
+    """
+    start, stop = trials["start"], trials["stop"]
+    n_total = int(sum(len(t) for t in spike_times))
+    if n_total == 0 or start.size == 0:
+        return
+    n_in = int(spikes_per_trial(spike_times, start, stop).sum())
+    spike_end = max(float(t[-1]) for t in spike_times if len(t))
+    trial_end = float(np.max(stop))
+    ratio = spike_end / trial_end
+    lo, hi = MIXED_UNIT_RATIO
+    if n_in < 0.5 * n_total:
+        isis = [np.diff(t) for t in spike_times if len(t) > 1]
+        med_isi = float(np.median(np.concatenate(isis))) if isis else 0.0
+        med_trial = float(np.median(stop - start))
+        cases = []
+        if lo <= ratio <= hi and med_isi > 1.0:
+            cases.append((1e-3, "milliseconds", "seconds", "divided by 1000"))
+        if 1 / hi <= ratio <= 1 / lo and med_trial > 100.0:
+            cases.append((1e3, "seconds", "milliseconds", "multiplied by 1000"))
+        for factor, spike_word, trial_word, how in cases:
+            n_scaled = int(spikes_per_trial([t * factor for t in spike_times], start,
+                                            stop).sum())
+            if n_scaled >= 0.5 * n_total and n_scaled > 2 * n_in:
+                raise InputError(
+                    f"{src}: spike times run to {spike_end:g} but the trials end at "
+                    f"{trial_end:g}, about {ratio if ratio > 1 else 1 / ratio:.0f} times "
+                    f"apart: the spike times look like {spike_word} and the trial times "
+                    f"like {trial_word} ({n_in / n_total:.0%} of the spikes fall inside "
+                    f"trials as read, {n_scaled / n_total:.0%} with the spike times {how}); "
+                    "expected one time unit for both: give the units with the loader "
+                    "options time_unit (spike tables, NPZ arrays) and trials_time_unit "
+                    "(the trials table), 's' or 'ms' (command line --time-unit, "
+                    "--trials-time-unit)")
+    if n_in == 0:
+        raise InputError(f"{src}: none of the {n_total} spikes "
+                         f"({min(float(t[0]) for t in spike_times if len(t)):g}-{spike_end:g} s) "
+                         f"falls inside any of the {start.size} trials "
+                         f"({float(start[0]):g}-{trial_end:g} s); expected a trials table that "
+                         "covers the spikes (check the trials file, its time origin and unit)")
 
 
 def _check_trial_table(trials: dict, src: str) -> dict:

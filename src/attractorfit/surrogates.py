@@ -578,7 +578,7 @@ def bin_like(recording, like) -> BinnedCounts:
                         metadata={"source": recording.source})
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)
-        out = bin_spikes(windows, bin_size=bin_size)
+        out = bin_spikes(windows, bin_size=bin_size, drop_silent=False)
     counts = out.counts
     if counts.shape[1] < like.n_bins:
         pad = np.zeros((counts.shape[0], like.n_bins - counts.shape[1], counts.shape[2]),

@@ -106,20 +106,93 @@ def available_memory() -> int:
         return 4 << 30
 
 
-def check_claimed_size(where: str, shape, itemsize: int) -> int:
+def check_claimed_size(where: str, shape, itemsize: int, *, what: str | None = None) -> int:
     """Refuse an array whose claimed size exceeds :data:`MEMORY_FRACTION` of free memory.
 
     Called with the shape read from a file header, before anything is allocated.
-    Returns the number of elements.
+    ``what`` replaces "an array of shape ..." in the message. Returns the number of
+    elements.
     """
     count = math.prod(int(s) for s in shape)
     nbytes = count * max(int(itemsize), 1)
     limit = int(available_memory() * MEMORY_FRACTION)
     if nbytes > limit:
-        raise InputError(f"{where}: the file claims an array of shape {tuple(shape)} "
-                         f"({nbytes / 1e9:.3g} GB), more than the {limit / 1e9:.3g} GB that "
-                         "can be allocated now; expected a smaller or uncorrupted file")
+        what = what or f"an array of shape {tuple(int(s) for s in shape)}"
+        raise InputError(f"{where}: the file claims {what} ({nbytes / 1e9:.3g} GB of "
+                         f"memory), more than the {limit / 1e9:.3g} GB that can be allocated "
+                         "now; expected a smaller or uncorrupted file")
     return count
+
+
+#: Memory one row of a text table takes while it is parsed (Python strings and list
+#: slots for the kept fields, then the arrays), in bytes; a generous estimate.
+TEXT_ROW_BYTES = 256
+
+
+def check_text_size(path, where: str) -> None:
+    """Refuse a text table whose rows would not fit in memory, before reading it.
+
+    The number of rows is estimated from the file size and the line length of its
+    first MiB.
+    """
+    size = os.path.getsize(path)
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 20)
+    rows = max(head.count(b"\n"), 1) * (size / max(len(head), 1))
+    check_claimed_size(where, (math.ceil(rows),), TEXT_ROW_BYTES,
+                       what=f"about {rows:.3g} rows of text ({size / 1e9:.3g} GB on disk)")
+
+
+#: Python code run in a child process to walk an HDF5 file before the parent opens it.
+_HDF5_WALK = """
+import sys
+import h5py
+small = int(sys.argv[2])
+def touch(obj):
+    for key in obj.attrs.keys():
+        obj.attrs[key]
+def visit(name, obj):
+    touch(obj)
+    if isinstance(obj, h5py.Dataset) and obj.shape is not None:
+        if obj.size * obj.dtype.itemsize <= small:
+            obj[()]
+with h5py.File(sys.argv[1], "r") as fh:
+    touch(fh)
+    fh.visititems(visit)
+"""
+#: Datasets up to this size (bytes) are read in full by the child walk.
+HDF5_WALK_BYTES = 16 << 20
+#: Seconds the child walk may take before the file is refused.
+HDF5_WALK_TIMEOUT = 120.0
+
+
+def hdf5_preflight(path, label: str | None = None) -> None:
+    """Walk an HDF5 file in a child process before it is opened here.
+
+    A corrupt HDF5 file can crash the HDF5 C library (segmentation fault) while its
+    attributes are read, which would kill this process with no message. The child
+    opens the file read-only, reads every attribute and every dataset up to
+    :data:`HDF5_WALK_BYTES`; if it dies from a signal or hangs, the file is refused
+    with an InputError. A Python-level failure in the child is left to the reader,
+    which reports it. Data of larger datasets is not walked.
+    """
+    import subprocess
+
+    label = label or source_name(path)
+    try:
+        proc = subprocess.run([sys.executable, "-I", "-c", _HDF5_WALK, os.fspath(path),
+                               str(HDF5_WALK_BYTES)], capture_output=True,
+                              timeout=HDF5_WALK_TIMEOUT, check=False)
+    except subprocess.TimeoutExpired:
+        raise InputError(f"{label}: reading the file's HDF5 structure did not finish in "
+                         f"{HDF5_WALK_TIMEOUT:g} s; expected an uncorrupted HDF5 file"
+                         ) from None
+    except OSError:  # no usable interpreter to start (embedded Python): no walk
+        return
+    if proc.returncode < 0:
+        raise InputError(f"{label}: reading the file's HDF5 structure crashed the HDF5 "
+                         f"library (signal {-proc.returncode}); the file is corrupt, "
+                         "expected an uncorrupted HDF5 file")
 
 
 def read_npy_header(fh, where: str):
@@ -208,17 +281,27 @@ def provenance_of(paths) -> list:
 
 # ------------------------------------------------------------------ assembly
 def resolve_trials(file_trials, trials_path, *, source: str, time_unit: str,
-                   provenance: list, warnings: list):
+                   provenance: list, warnings: list, trials_time_unit: str | None = None):
     """Pick the trials table: the one given with ``trials=`` wins over the file's own.
 
     Appends the trials file's provenance and, when it overrides trials found in the
-    recording, a warning saying so.
+    recording, a warning saying so. The table's times are in ``trials_time_unit``
+    (default: ``time_unit``).
     """
+    if trials_time_unit is not None and (not isinstance(trials_time_unit, str)
+                                         or trials_time_unit not in TIME_UNITS):
+        raise InputError(f"trials_time_unit: expected 's' or 'ms', got {trials_time_unit!r}")
     if trials_path is None:
+        if trials_time_unit is not None:
+            raise InputError(f"trials_time_unit: given ({trials_time_unit!r}) without a "
+                             "trials table; expected it with the option trials=")
         return file_trials
+    from attractorfit._validation import collect_input_warnings
     from attractorfit.io._table import read_trials_table
 
-    table = read_trials_table(trials_path, time_unit=time_unit)
+    with collect_input_warnings([], reemit_input=False) as notes:  # emitted by finish()
+        table = read_trials_table(trials_path, time_unit=trials_time_unit or time_unit)
+    warnings.extend(notes)
     provenance.extend(provenance_of([os.fspath(trials_path)]))
     if file_trials is not None and len(np.asarray(file_trials.get("start", [])).ravel()):
         warnings.append(f"{source}: its own trials table "
@@ -229,6 +312,15 @@ def resolve_trials(file_trials, trials_path, *, source: str, time_unit: str,
 
 
 def finish(rec, warnings: list):
-    """Put the loader's warnings before the quality warnings of ``rec``; return it."""
+    """Put the loader's warnings before the quality warnings of ``rec``; return it.
+
+    Each loader warning is also emitted as an :class:`~attractorfit.errors.InputWarning`
+    (the quality warnings were emitted by :meth:`Recording.validate`).
+    """
+    from attractorfit._validation import warn_input
+
+    for w in dict.fromkeys(warnings):
+        if w not in rec.warnings:
+            warn_input(w)
     rec.warnings = list(dict.fromkeys(list(warnings) + list(rec.warnings)))
     return rec

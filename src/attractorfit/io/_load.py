@@ -70,6 +70,10 @@ def load(path, **options) -> Recording:
             Unit of plain numbers: spike tables, NPZ arrays and the trials table.
             NWB times are seconds; neo files carry their units; sorter folders
             count samples.
+        trials_time_unit : {'s', 'ms'}, optional
+            Unit of the ``trials`` table when it differs from ``time_unit`` (e.g.
+            spikes in milliseconds, trials in seconds). Spike and trial times about
+            1000 times apart are refused with a message naming these options.
         unit_column : str
             Spike tables: name of the unit column (default ``unit``). NWB: units-table
             column holding the unit names (default: ``unit_name``, ``name``,

@@ -7,9 +7,9 @@ import logging
 import os
 
 from attractorfit.errors import InputError
-from attractorfit.io._common import (SUPPORTED_FORMATS, check_file, finish, library_errors,
-                                     provenance_of, resolve_trials, source_name,
-                                     track_reads)
+from attractorfit.io._common import (SUPPORTED_FORMATS, check_claimed_size, check_file,
+                                     finish, hdf5_preflight, library_errors, provenance_of,
+                                     resolve_trials, source_name, track_reads)
 from attractorfit.recording import Recording
 
 __all__ = ["read_neo"]
@@ -64,12 +64,19 @@ def _read_spikes_block(cls, path):
     import neo
     from neo.io.proxyobjects import BaseProxy
 
+    if not lazy_ok(cls):
+        _check_hdf5_size(path)
     io = cls(path, **_READ_ONLY_KWARGS.get(_full_name(cls), {}))
     try:
         lazy = bool(getattr(io, "support_lazy", False))
         block = io.read_block(lazy=True) if lazy else io.read_block()
         if block is None:
             raise ValueError("the file holds no block of data")
+        if lazy:  # spike counts are known before anything is loaded
+            claimed = sum(int(getattr(st, "shape", (0,))[0]) for seg in block.segments
+                          for st in seg.spiketrains if isinstance(st, BaseProxy))
+            check_claimed_size(source_name(path), (claimed,), 8,
+                               what=f"{claimed} spike times")
         out = neo.Block(name=block.name)
         for seg in block.segments:
             new = neo.Segment(name=seg.name)
@@ -85,12 +92,48 @@ def _read_spikes_block(cls, path):
             close()
 
 
+def lazy_ok(cls) -> bool:
+    """Whether the IO class can read lazily (and so report sizes before loading)."""
+    return bool(getattr(cls, "support_lazy", False))
+
+
+def _check_hdf5_size(path) -> None:
+    """Refuse an HDF5 file (e.g. NIX) whose datasets together claim too much memory.
+
+    An IO that cannot read lazily loads every dataset; their shapes are read from the
+    file's metadata (read-only) before anything is allocated. Not HDF5: no check.
+    """
+    if os.path.isdir(path):
+        return
+    import h5py
+    import numpy as np
+
+    try:
+        if not h5py.is_hdf5(path):
+            return
+    except OSError:
+        return
+    total = [0]
+
+    def visit(_, obj):
+        if isinstance(obj, h5py.Dataset) and obj.shape is not None:
+            total[0] += int(np.prod(obj.shape, dtype=np.float64)) * int(obj.dtype.itemsize)
+
+    hdf5_preflight(path)  # a corrupt file can crash the HDF5 library: try it in a child
+    with library_errors(path, "an HDF5 file"):
+        with h5py.File(path, "r") as fh:
+            fh.visititems(visit)
+    check_claimed_size(source_name(path), (total[0],), 1,
+                       what=f"HDF5 datasets of {total[0]} bytes in all")
+
+
 def _has_trials_epoch(block) -> bool:
     return any((ep.name or "").lower() == "trials" for seg in block.segments
                for ep in seg.epochs)
 
 
-def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
+def read_neo(path, *, trials=None, time_unit: str = "s",
+             trials_time_unit: str | None = None) -> Recording:
     """Read a file or folder through neo's IO classes (NIX, Spike2, Plexon, Blackrock...).
 
     The candidate IO classes come from the path's suffix (or a folder's contents)
@@ -106,6 +149,8 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
         A trials table (see :func:`read_trials_table`) that replaces the file's trials.
     time_unit : {'s', 'ms'}
         Unit of the times in the ``trials`` table (neo carries its own units).
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
 
     Returns
     -------
@@ -117,8 +162,10 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
     ------
     InputError
         No neo IO for the suffix, a refused IO (pickle files, neo's example IO, NWB
-        which :func:`read_nwb` reads), every candidate IO failing on the file, bad
-        times or trials, fewer than two units, no spikes.
+        which :func:`read_nwb` reads), every candidate IO failing on the file, a file
+        claiming more memory than is available (HDF5 dataset shapes for IOs that read
+        everything, spike counts of lazy IOs; checked before loading), bad times or
+        trials, fewer than two units, no spikes.
 
     References
     ----------
@@ -136,6 +183,8 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
         try:
             with track_reads(folder) as opened, _quiet_neo():
                 block = _read_spikes_block(cls, path)
+        except InputError:  # our own checks (e.g. a claimed size): not a library failure
+            raise
         except Exception as exc:  # noqa: BLE001 -- library failure on this file
             reason = (str(exc).strip().splitlines() or [""])[0][:200]
             errors.append(f"{cls.__name__}: {type(exc).__name__}"
@@ -158,5 +207,6 @@ def read_neo(path, *, trials=None, time_unit: str = "s") -> Recording:
         warnings.append(f"{name}: no 'trials' epoch; each of the {len(block.segments)} "
                         "segments became a trial")
     rec.trials = resolve_trials(rec.trials, trials, source=name, time_unit=time_unit,
+                                trials_time_unit=trials_time_unit,
                                 provenance=rec.provenance, warnings=warnings)
     return finish(rec.validate(), warnings)

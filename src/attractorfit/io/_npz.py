@@ -92,7 +92,8 @@ def _labels(arr, key, where) -> np.ndarray:
                      "(whole numbers or text)")
 
 
-def read_npz(path, *, time_unit: str = "s", trials=None) -> Recording:
+def read_npz(path, *, time_unit: str = "s", trials=None,
+             trials_time_unit: str | None = None) -> Recording:
     """Read spikes (and optionally trials) from an NPZ archive.
 
     Parameters
@@ -104,6 +105,8 @@ def read_npz(path, *, time_unit: str = "s", trials=None) -> Recording:
         and ``trial_<label>`` arrays (one value per trial) as label columns.
     time_unit : {'s', 'ms'}
         Unit of the spike and trial times (and of the trials table, if given).
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
     trials : str or path-like, optional
         A trials table (see :func:`read_trials_table`) that replaces the archive's.
 
@@ -168,6 +171,7 @@ def read_npz(path, *, time_unit: str = "s", trials=None) -> Recording:
                         "spike_units, unit_ids and trial_* arrays")
     provenance = provenance_of([path])
     trials_table = resolve_trials(file_trials, trials, source=name, time_unit=time_unit,
+                                  trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
     rec = Recording.from_arrays(times, units, trials=trials_table, unit_ids=unit_ids,
                                 metadata={"format": "npz", "time_unit": time_unit},

@@ -11,8 +11,8 @@ import numpy as np
 
 from attractorfit.errors import InputError
 from attractorfit.io._common import (check_claimed_size, check_file, finish,
-                                     library_errors, provenance_of, resolve_trials,
-                                     source_name)
+                                     hdf5_preflight, library_errors, provenance_of,
+                                     resolve_trials, source_name)
 from attractorfit.recording import Recording, _natural_sort
 
 __all__ = ["read_nwb", "write_nwb"]
@@ -67,6 +67,7 @@ def _read_units(units, name: str, unit_column, warnings: list):
                          "spike_times_index)")
     check_claimed_size(f"{name}: units spike_times", col.target.data.shape,
                        np.dtype(col.target.data.dtype).itemsize)
+    check_claimed_size(f"{name}: units spike_times_index", col.data.shape, 8)
     ends = np.asarray(col.data[:], dtype=np.int64).ravel()
     flat = np.asarray(col.target.data[:], dtype=np.float64).ravel()
     if ends.size and (np.any(np.diff(ends) < 0) or ends[0] < 0 or ends[-1] != flat.size):
@@ -109,6 +110,8 @@ def _interval_columns(table, name: str, warnings: list) -> dict | None:
     if n == 0:
         warnings.append(f"{name}: the {table.name} table is empty; ignored")
         return None
+    check_claimed_size(f"{name}: {table.name} table", (n, max(len(table.colnames), 2)), 8,
+                       what=f"{n} rows of {len(table.colnames)} columns")
     out = {"start": np.asarray(table["start_time"].data[:], dtype=np.float64),
            "stop": np.asarray(table["stop_time"].data[:], dtype=np.float64)}
     skipped = []
@@ -149,7 +152,7 @@ def _interval_columns(table, name: str, warnings: list) -> dict | None:
 
 
 def read_nwb(path, *, unit_column: str | None = None, trials=None,
-             time_unit: str = "s") -> Recording:
+             time_unit: str = "s", trials_time_unit: str | None = None) -> Recording:
     """Read units and trials from an NWB file with pynwb (read-only).
 
     Parameters
@@ -163,6 +166,8 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
         A trials table (see :func:`read_trials_table`) that replaces the file's.
     time_unit : {'s', 'ms'}
         Unit of the times in the ``trials`` table (NWB times are always seconds).
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
 
     Returns
     -------
@@ -175,7 +180,9 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
     Raises
     ------
     InputError
-        Not a readable NWB file (missing, empty, truncated, not HDF5), no units table
+        Not a readable NWB file (missing, empty, truncated, not HDF5, or so corrupt
+        that reading it crashes the HDF5 library, which is tried first in a child
+        process), no units table
         or no spike times, a ``unit_column`` that is absent, bad times or trials, fewer
         than two units, no spikes.
 
@@ -190,6 +197,7 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
     warnings: list = []
     from pynwb import NWBHDF5IO
 
+    hdf5_preflight(path)  # a corrupt file can crash the HDF5 library: try it in a child
     with library_errors(path, _EXPECTED):
         nwb_io = NWBHDF5IO(path, mode="r")
     try:
@@ -216,6 +224,7 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
             nwb_io.close()
     provenance = provenance_of([path])
     trials_table = resolve_trials(file_trials, trials, source=name, time_unit=time_unit,
+                                  trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
     order = {u: k for k, u in enumerate(ids)}
     ids = _natural_sort(ids) if len(set(ids)) == len(ids) else ids  # same order as others

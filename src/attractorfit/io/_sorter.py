@@ -16,8 +16,8 @@ import numpy as np
 
 from attractorfit._validation import check_positive
 from attractorfit.errors import InputError
-from attractorfit.io._common import (check_file, finish, load_npy, provenance_of,
-                                     resolve_trials, source_name)
+from attractorfit.io._common import (check_file, check_text_size, finish, load_npy,
+                                     provenance_of, resolve_trials, source_name)
 from attractorfit.io._table import _find_column, _header, _rows
 from attractorfit.recording import Recording
 
@@ -27,6 +27,8 @@ _RATE_KEYS = ("sample_rate", "sampling_rate")
 #: Label files in increasing priority: a later file overrides an earlier one.
 _LABEL_FILES = ("cluster_info.tsv", "cluster_group.tsv")
 _LABEL_COLUMNS = ("group", "KSLabel", "label")
+#: Largest params.py read (a settings file of a few lines; anything bigger is refused).
+PARAMS_MAX_BYTES = 1 << 20
 
 
 def _read_params(path) -> tuple[dict, dict]:
@@ -48,9 +50,14 @@ def _read_params(path) -> tuple[dict, dict]:
     Raises
     ------
     InputError
-        The file is not valid Python text.
+        The file is larger than :data:`PARAMS_MAX_BYTES` or not valid Python text.
     """
     name = source_name(path)
+    size = os.path.getsize(path)
+    if size > PARAMS_MAX_BYTES:
+        raise InputError(f"{name}: {size} bytes; expected a small settings file (at most "
+                         f"{PARAMS_MAX_BYTES} bytes) with assignments such as "
+                         "'sample_rate = 30000.0'")
     try:
         with open(path, "rb") as fh:
             text = fh.read()
@@ -99,6 +106,7 @@ def _cluster_labels(folder, used: list, warnings: list) -> dict:
         if os.path.getsize(path) == 0:
             warnings.append(f"{fname}: empty file ignored")
             continue
+        check_text_size(path, fname)
         rows = _rows(path, "\t")
         hline, header = _header(path, rows, what="columns 'cluster_id' and a label "
                                                  "column such as 'group'")
@@ -126,7 +134,8 @@ def _cluster_labels(folder, used: list, warnings: list) -> dict:
 
 
 def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
-                       trials=None, time_unit: str = "s") -> Recording:
+                       trials=None, time_unit: str = "s",
+                       trials_time_unit: str | None = None) -> Recording:
     """Read a spike-sorter output folder.
 
     Parameters
@@ -145,6 +154,8 @@ def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
         A trials table (see :func:`read_trials_table`); a folder has none of its own.
     time_unit : {'s', 'ms'}
         Unit of the trials table's times.
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
 
     Returns
     -------
@@ -248,6 +259,7 @@ def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
                 "cluster_labels": {str(c): labels.get(str(c), "") for c in ids}}
     provenance = provenance_of(used)
     trials_table = resolve_trials(None, trials, source=name, time_unit=time_unit,
+                                  trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
     rec = Recording.from_arrays(times, clusters, trials=trials_table,
                                 unit_ids=[str(c) for c in ids], metadata=metadata,

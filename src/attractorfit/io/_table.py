@@ -13,8 +13,8 @@ import numpy as np
 from attractorfit._output import atomic_write
 from attractorfit._validation import check_trials, warn_input
 from attractorfit.errors import InputError
-from attractorfit.io._common import (check_file, finish, provenance_of, resolve_trials,
-                                     source_name, time_factor)
+from attractorfit.io._common import (check_file, check_text_size, finish, provenance_of,
+                                     resolve_trials, source_name, time_factor)
 from attractorfit.recording import Recording
 
 __all__ = ["read_table", "read_trials_table", "write_csv"]
@@ -213,6 +213,7 @@ def read_trials_table(path, *, time_unit: str = "s", start_column: str = "start"
     path = check_file(path)
     name = source_name(path)
     factor = time_factor(time_unit)
+    check_text_size(path, name)
     delim = _delimiter(path, delimiter)
     rows = _rows(path, delim)
     hline, header = _header(path, rows, what="a trials table with columns 'start' and "
@@ -249,7 +250,7 @@ def read_trials_table(path, *, time_unit: str = "s", start_column: str = "start"
 
 def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
                time_unit: str = "s", delimiter: str | None = None,
-               trials=None) -> Recording:
+               trials=None, trials_time_unit: str | None = None) -> Recording:
     """Read a spike table: one row per spike, a unit column and a time column.
 
     Parameters
@@ -260,6 +261,8 @@ def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
         Header names of the unit label and spike time columns.
     time_unit : {'s', 'ms'}
         Unit of the time column (and of the trials table, if given).
+    trials_time_unit : {'s', 'ms'}, optional
+        Unit of the ``trials`` table when it differs from ``time_unit``.
     delimiter : str, optional
         Field delimiter; default from the suffix (``.csv`` comma, ``.tsv``/``.tab``
         tab) or sniffed from the first lines (``.txt`` and others).
@@ -274,13 +277,15 @@ def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
     Raises
     ------
     InputError
-        Missing, empty or unreadable file, missing columns, rows of the wrong width,
+        Missing, empty or unreadable file, a file too large to parse in the memory
+        available (checked before reading), missing columns, rows of the wrong width,
         empty unit labels, spike times that are not finite numbers >= 0, fewer than
         two units, no spikes. Messages name the file and the line.
     """
     path = check_file(path)
     name = source_name(path)
     factor = time_factor(time_unit)
+    check_text_size(path, name)
     delim = _delimiter(path, delimiter)
     rows = _rows(path, delim)
     hline, header = _header(path, rows, what=f"a spike table with columns "
@@ -306,6 +311,7 @@ def read_table(path, *, unit_column: str = "unit", time_column: str = "time",
     warnings: list = []
     provenance = provenance_of([path])
     trials_table = resolve_trials(None, trials, source=name, time_unit=time_unit,
+                                  trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
     rec = Recording.from_arrays(times, np.array(units, dtype=str), trials=trials_table,
                                 metadata={"format": "table", "time_unit": time_unit},

@@ -38,7 +38,7 @@ import numpy as np
 from scipy import linalg, optimize
 
 from attractorfit._validation import check_array, check_nonnegative, check_positive
-from attractorfit.errors import InputError
+from attractorfit.errors import InputError, InputWarning
 
 __all__ = ["DecoderResult", "decoder_hebbian", "decoder_pseudoinverse", "decoder_optimized",
            "vertex_margins", "readout_sd"]
@@ -89,11 +89,48 @@ def _check_patterns(rates, codes, tau_s, scale):
             else ""
         raise InputError(f"codes: expected shape (K, P) with P = {r.shape[1]} patterns like "
                          f"rates (N x P), got {x.shape}{hint}")
-    if r.size and r.min() < 0:
+    if r.size == 0:
+        raise InputError(f"rates: expected at least one neuron and one pattern, got shape "
+                         f"{r.shape}")
+    if r.min() < 0:
         j, m = np.unravel_index(int(np.argmin(r)), r.shape)
         raise InputError(f"rates: neuron {j}, pattern {m} has rate {float(r[j, m])!r} Hz; "
                          "expected rates >= 0")
+    if not np.any(r > 0):
+        raise InputError(f"rates: all {r.size} rates are 0 Hz (the pattern matrix is zero); "
+                         "expected at least one active neuron: no decoder reads a vertex "
+                         "out of silence")
     return r, x, check_positive("tau_s", tau_s), check_positive("scale", scale)
+
+
+def _warn_if_least_squares(res, r, x, rcond):
+    """InputWarning when the fixed points hold only in the least-squares sense.
+
+    Happens when the pattern matrix R is rank-deficient and the codes are not in its
+    row space (e.g. two patterns with the same rates but different codes, or more
+    patterns than K + 1 with a hypercube encoder). The decoder returned is then the
+    minimum-norm least-squares one (the limit of ridge regularisation as the ridge
+    goes to 0); ``residual`` says how far the fixed points are missed.
+    """
+    if res.residual <= 1e-6:
+        return
+    sv = linalg.svdvals(r)
+    rank = int(np.sum(sv > rcond * sv[0]))
+    same = ""
+    p = r.shape[1]
+    tol = 1e-9 * float(np.max(np.abs(r)))
+    for a in range(p):
+        for b in range(a + 1, p):
+            if np.all(np.abs(r[:, a] - r[:, b]) <= tol) and np.any(x[:, a] != x[:, b]):
+                same = (f"; patterns {a} and {b} have the same rates but different codes, "
+                        "so no decoder can tell them apart")
+                break
+        if same:
+            break
+    warnings.warn(f"decoder_{res.rule}: the {p} patterns' rates have rank {rank}, and the "
+                  f"codes are not reachable from them{same}; used the least-squares "
+                  f"(minimum-norm) decoder, relative residual {res.residual:.3g}",
+                  InputWarning, stacklevel=3)
 
 
 def readout_sd(decoder, rates, *, tau_s):
@@ -217,6 +254,18 @@ def decoder_pseudoinverse(rates, codes, *, tau_s, scale=1.0, rcond=1e-10, encode
     -------
     DecoderResult
 
+    Raises
+    ------
+    InputError
+        Bad shapes, negative rates, or a pattern matrix that is all zero.
+
+    Warns
+    -----
+    InputWarning
+        A rank-deficient pattern matrix whose codes cannot be reached (e.g. two
+        patterns with equal rates and different codes): the decoder is the
+        least-squares, minimum-norm one (the ridge limit), and ``residual`` > 1e-6.
+
     References
     ----------
     .. [1] Personnaz L, Guyon I, Dreyfus G (1985) J Physique Lettres 46:L359-L365.
@@ -225,8 +274,10 @@ def decoder_pseudoinverse(rates, codes, *, tau_s, scale=1.0, rcond=1e-10, encode
     r, x, tau_s, scale = _check_patterns(rates, codes, tau_s, scale)
     e, s = _check_dynamics(encoder, slopes, r.shape[0], x.shape[0], r.shape[1])
     rcond = check_positive("rcond", rcond)
-    return _result(pseudoinverse_matrix(r, x, tau_s=tau_s, scale=scale, rcond=rcond),
-                   "pseudoinverse", r, x, tau_s, scale, encoder=e, slopes=s)
+    res = _result(pseudoinverse_matrix(r, x, tau_s=tau_s, scale=scale, rcond=rcond),
+                  "pseudoinverse", r, x, tau_s, scale, encoder=e, slopes=s)
+    _warn_if_least_squares(res, r, x, rcond)
+    return res
 
 
 def pseudoinverse_matrix(r, x, *, tau_s, scale=1.0, rcond=1e-10):
@@ -287,6 +338,19 @@ def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin
     DecoderResult
         With ``margins`` and ``success`` (False, with a warning, if the margins could not
         be reached).
+
+    Raises
+    ------
+    InputError
+        Bad shapes, negative rates, or a pattern matrix that is all zero.
+
+    Warns
+    -----
+    RuntimeWarning
+        The margins could not be reached.
+    InputWarning
+        A rank-deficient pattern matrix whose codes cannot be reached: the fixed points
+        hold in the least-squares sense only (as for :func:`decoder_pseudoinverse`).
 
     References
     ----------
@@ -369,6 +433,7 @@ def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin
     dec = decoder_of(z)
     res = _result(dec, "optimized", r, x, tau_s, scale, encoder=e, slopes=s,
                   success=success, message=message)
+    _warn_if_least_squares(res, r, x, rcond)
     if not success:
         worst = int(np.argmin(res.margins))
         warnings.warn(f"decoder_optimized: could not reach margin {margin:g} at every "
