@@ -95,6 +95,7 @@ def methods_text(result) -> str:
     cmp_ = getattr(result, "comparison", None)
     if cmp_ is not None and hasattr(cmp_, "methods_text"):
         parts.append(cmp_.methods_text())
+    parts.extend(_lab_methods(result))
     return " ".join(parts)
 
 
@@ -466,10 +467,11 @@ def _lab_sections(result, labels, add) -> list:
         blocks.append(TableBlock("robustness_states", h, rows, max_rows=12,
                                  caption="One row per state of every setting, with the "
                                          "chosen state it was matched to (-1: none)."))
-        blocks.append("Assumptions: refits keep the chosen minimum segment duration and the "
-                      "latent dimension of the vertex codes, fix their number of states (no "
-                      "new choice) and skip the discreteness test; the threshold settings "
-                      "decode the chosen model again without refitting it.")
+        blocks.append("Assumptions: refits keep the chosen posterior threshold and minimum "
+                      "segment duration, fit their vertex codes in the chosen analysis's "
+                      "latent space (so cube R² is comparable), fix their number of states "
+                      "(no new choice) and skip the discreteness test; the threshold "
+                      "settings decode the chosen model again without refitting it.")
         sections.append(Section("Robustness of the state analysis", blocks))
 
     ud = getattr(result, "unit_drift", None)
@@ -516,6 +518,40 @@ def _lab_sections(result, labels, add) -> list:
                       "more errors late in the session) also shows up as drift.")
         sections.append(Section("Drift across the session", blocks))
     return sections
+
+
+def _lab_methods(result) -> list:
+    """Methods sentences for end-of-window decoding, robustness and drift."""
+    out = []
+    es = getattr(result, "end_state", None)
+    if es:
+        v = next(iter(es.values()))
+        feat = (f"the state posterior averaged over the last {v.end_fraction:.0%} of the "
+                "analysis window" if v.feature == "posterior" else
+                "the state assigned to the last bin of the analysis window")
+        out.append(f"Each categorical trial label was predicted from {feat} by a "
+                   f"nearest-centroid classifier in {v.n_folds}-fold cross-validation "
+                   f"stratified by the label ({v.score.replace('_', ' ')}, mean over folds); "
+                   f"the p-value came from {v.n_permutations} permutations of the labels over "
+                   "trials with the same folds, p = (1 + b)/(B + 1).")
+    rob = getattr(result, "robustness", None)
+    if rob is not None:
+        out.append("For the robustness panel the Poisson HMM was refitted with a fixed "
+                   "number of states at the settings listed in the panel, or the chosen "
+                   "model was decoded again at other posterior thresholds; states were "
+                   "matched to the chosen ones by the Hungarian algorithm on the Euclidean "
+                   "distance between state rate vectors.")
+    ud, sd = getattr(result, "unit_drift", None), getattr(result, "state_drift", None)
+    if ud is not None and sd is not None:
+        out.append("Drift: each unit's per-trial rate was rank-correlated with the trial "
+                   "index (Spearman) and the p-values adjusted across units "
+                   f"(Benjamini-Hochberg, false discovery rate {ud.alpha:g}); state "
+                   f"occupancy in {sd.n_blocks} blocks of consecutive trials was compared by "
+                   "a chi-square statistic of homogeneity" +
+                   (f" summed over the levels of '{sd.stratified_by}'" if sd.stratified_by
+                    else "") + f", with a p-value from {sd.n_permutations} permutations of "
+                   "whole trials across blocks.")
+    return out
 
 
 def _robustness_words(rob) -> str:

@@ -17,9 +17,12 @@ training trials' features; ties go to the first level in sorted order), a classi
 with no tuning parameter, so the cross-validation has nothing to select and the
 permutation test needs no nested loop.
 
-Accuracy and p-value. The trials are dealt into ``n_folds`` folds stratified by the
-label; the accuracy is the mean over folds of the fraction of test trials predicted
-correctly (the convention of scikit-learn's ``cross_val_score``). The null
+Score and p-value. The trials are dealt into ``n_folds`` folds stratified by the
+label; the score is the mean over folds (the convention of scikit-learn's
+``cross_val_score``) of the balanced accuracy (mean recall over the label's values
+present in the test fold; chance 1 / values whatever their frequencies, so a common
+outcome such as 80 % correct trials does not pass for decoding) or of the plain
+accuracy (chance: the frequency of the most common value). The null
 distribution re-evaluates the same folds with the labels randomly permuted across
 trials, and p = (1 + b) / (B + 1) with b the permutations whose accuracy reaches the
 observed one [2]_ (the same test as ``sklearn.model_selection.permutation_test_score``,

@@ -5,7 +5,8 @@ Robustness panel. The state analysis is rerun with the number of states one belo
 one above the chosen one, with the bin size halved and doubled, and decoded again with
 a lower and a higher posterior threshold. Every rerun fixes its number of states (no
 new choice, no discreteness test) and the latent dimension of the vertex codes, so its
-cost is a few HMM fits. The states of each setting are matched to the chosen ones by
+cost is a few HMM fits (vertex codes are fitted in the chosen analysis's latent space).
+The states of each setting are matched to the chosen ones by
 the Hungarian algorithm [1]_ on the Euclidean distance between state rate vectors (Hz;
 ``scipy.optimize.linear_sum_assignment``; with unequal counts some states stay
 unmatched), and the panel tabulates, per setting: occupancy and mean dwell of each
@@ -298,11 +299,15 @@ def state_robustness(binned, state_fit, *, state_steps=(-1, 1), rebinned=None,
 
     Notes
     -----
-    The refits keep the chosen fit's minimum segment duration (in seconds) and the
-    latent dimension of its vertex codes, so cube R^2 differs only through the
-    states; the cost is one HMM fit with a fixed state count per refitted setting.
+    The refits keep the chosen fit's posterior threshold and minimum segment duration
+    (in seconds), and their vertex codes are fitted in the chosen fit's latent space
+    (state rates converted to counts per chosen bin), so cube R^2 differs only through
+    the states; the cost is one Poisson HMM fit with a fixed state count per refitted
+    setting (no latent refit, no choice of the state count, no discreteness test).
     """
-    from attractorfit.states._analysis import _decode, analyse_states
+    from attractorfit.states._analysis import _decode
+    from attractorfit.states._hmm import PoissonHMM
+    from attractorfit.states._vertices import assign_vertex_codes
 
     rng = check_rng(rng)
     n_restarts = check_int("robustness.n_restarts", n_restarts, low=1)
@@ -313,8 +318,6 @@ def state_robustness(binned, state_fit, *, state_steps=(-1, 1), rebinned=None,
     settings = [_setting("chosen", sf, sf.decoding, rates_hz=sf.rates_hz, cube_r2=sf.cube_r2,
                          bin_size=sf.bin_size, threshold=sf.posterior_threshold,
                          unit_cols=all_cols, centre=centre)]
-    common = dict(posterior_threshold=sf.posterior_threshold, min_segment_s=sf.min_segment_s,
-                  latent_dims=max(1, int(sf.latent.n_dims)), n_restarts=n_restarts)
     jobs = [(f"states{d:+d}", binned, s0 + int(d)) for d in state_steps if s0 + int(d) >= 1]
     jobs += [(name, b, s0) for name, b in (rebinned or {}).items()]
     seeds = np.random.SeedSequence(int(rng.integers(2 ** 63 - 1))).spawn(len(jobs))
@@ -322,15 +325,25 @@ def state_robustness(binned, state_fit, *, state_steps=(-1, 1), rebinned=None,
         if not np.array_equal(b.trial_index, binned.trial_index):
             raise InputError(f"rebinned[{name!r}]: holds other trials than the chosen "
                              "analysis; expected the same trials at another bin size")
-        fit = analyse_states(b, n_states=s, rng=np.random.default_rng(seed), **common)
-        ids = {u: i for i, u in enumerate(fit.unit_ids)}
+        hmm_seed, code_seed = seed.spawn(2)
+        model = PoissonHMM(s, n_restarts=n_restarts, rng=np.random.default_rng(hmm_seed))
+        model.fit(b.sequences(dtype=np.float64))
+        rates_hz = np.asarray(model.rates_, dtype=float) / b.bin_size
+        same_units = list(b.unit_ids) == list(sf.unit_ids)
+        # codes in the chosen analysis's latent space (rates as counts per chosen bin),
+        # so cube R^2 is comparable across settings; log-rate codes if units differ
+        codes = assign_vertex_codes(rates_hz * sf.bin_size if same_units else rates_hz,
+                                    latent=sf.latent if same_units else None,
+                                    rng=np.random.default_rng(code_seed))
+        dec = _decode(model, b, n_states=s, threshold=sf.posterior_threshold,
+                      min_segment_s=sf.min_segment_s, label_to_state=None)
+        ids = {u: i for i, u in enumerate(b.unit_ids)}
         shared = [i for i, u in enumerate(sf.unit_ids) if u in ids]
         cols = (np.asarray(shared, dtype=np.int64),
                 np.asarray([ids[sf.unit_ids[i]] for i in shared], dtype=np.int64))
-        settings.append(_setting(name, sf, fit.decoding, rates_hz=fit.rates_hz,
-                                 cube_r2=fit.cube_r2, bin_size=fit.bin_size,
-                                 threshold=sf.posterior_threshold, unit_cols=cols,
-                                 centre=centre[cols[0]]))
+        settings.append(_setting(name, sf, dec, rates_hz=rates_hz, cube_r2=codes.cube_r2,
+                                 bin_size=b.bin_size, threshold=sf.posterior_threshold,
+                                 unit_cols=cols, centre=centre[cols[0]]))
     for t in thresholds:
         t = float(t)
         if not 0.5 < t < 1.0:
