@@ -21,6 +21,8 @@ Protocol (fixed here):
   units ramping linearly by +-15% around their mean (30% first to last).
 
 Run: python benchmarks/bench_lab_checks.py [--reps N]   (about a minute on 2 shared cores)
+     python benchmarks/bench_lab_checks.py --demo-cost  (added time of each check on the
+     bundled demo recording, CPU beside wall, 3 repetitions)
 """
 
 import os
@@ -59,11 +61,61 @@ def _binomial_band(rate, reps):
     return f"{rate:.3f} (nominal 0.05, 95% band {0.05 - 2 * sd:.3f}-{0.05 + 2 * sd:.3f})"
 
 
+def demo_cost(reps=3):
+    """Time each lab check (and its figures) on the demo recording's state fit."""
+    import importlib.resources as resources
+
+    from attractorfit import pipeline, plots
+    from attractorfit._figures import _lab_sections
+    from attractorfit.config import load_config
+    from attractorfit.io import load
+
+    data = resources.files("attractorfit.sample_data")
+    cfg = load_config(str(data / "demo.toml"))
+    rec = load(str(data / "ports_session.nwb"))
+    off = {k: dict(v) for k, v in cfg.items()}
+    for sec in ("decoding", "robustness", "drift"):
+        off[sec]["enabled"] = False
+    res = pipeline.run_states(rec, off, seed=0, discreteness=False)
+
+    def clock(f):
+        w, c = time.perf_counter(), time.process_time()
+        f()
+        return time.perf_counter() - w, time.process_time() - c
+
+    def only(name):
+        c = {k: dict(v) for k, v in cfg.items()}
+        for sec in ("decoding", "robustness", "drift"):
+            c[sec]["enabled"] = sec == name
+        res.config = c
+        return lambda: pipeline.run_lab_checks(res, seed=0)
+
+    def add(blocks, fig, name, caption):
+        plots.save_figure(fig, "/tmp/bench_lab_checks_figures", name, formats=("png",),
+                          dpi=150)
+
+    labels = None
+    for rep in range(reps):
+        out = {name: clock(only(name)) for name in ("decoding", "robustness", "drift")}
+        res.config = cfg
+        pipeline.run_lab_checks(res, seed=0)
+        labels = [str(i) for i in range(res.state_fit.n_states)]
+        out["figures"] = clock(lambda: _lab_sections(res, labels, add))
+        total = sum(c for _, c in out.values())
+        print(f"rep {rep}: " + "  ".join(f"{k} wall {w:.2f} s CPU {c:.2f} s"
+                                         for k, (w, c) in out.items())
+              + f"  | total CPU {total:.2f} s | load {os.getloadavg()[0]:.1f}")
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--reps", type=int, default=200)
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--demo-cost", action="store_true")
     args = ap.parse_args()
+    if args.demo_cost:
+        demo_cost()
+        return
     rng = np.random.default_rng(args.seed)
     t0, c0 = time.perf_counter(), time.process_time()
 
