@@ -78,12 +78,20 @@ def test_stage_commands_give_the_bytes_of_one_run(full, tmp_path):
     out = tmp_path / "st"
     assert _main("states", d / "rec.nwb", "--out", out, "--config", d / "run.toml", "--seed",
                  "1", "--quiet") == 0
-    for command in ("fit", "simulate", "compare", "report"):
+    for command in ("fit", "simulate", "compare"):
         assert _main(command, out, "--quiet") == 0, command
+    shutil.rmtree(out / "tables")  # `report` rebuilds them from the folder alone
+    assert _main("report", out, "--quiet") == 0
     for name in SAME + ("model.npz", "state_model.npz", "posteriors.npz"):
         assert (out / name).read_bytes() == (full / name).read_bytes(), name
+    # the lab checks (decoding, robustness, drift) reach the report rebuilt from disk
+    for name in ("robustness.csv", "state_drift.csv", "unit_drift.csv",
+                 "end_state_decoding.csv"):
+        assert (out / "tables" / name).read_bytes() == \
+            (full / "tables" / name).read_bytes(), name
     s = json.loads((out / "summary.json").read_text())
-    assert {"states", "discreteness", "model", "comparison"} <= set(s)
+    assert {"states", "discreteness", "model", "comparison", "robustness", "drift",
+            "end_state_decoding"} <= set(s)
     html = (out / "report.html").read_text()
     assert "Model vs data" in html and "not proof" in html
 

@@ -95,6 +95,7 @@ def methods_text(result) -> str:
     cmp_ = getattr(result, "comparison", None)
     if cmp_ is not None and hasattr(cmp_, "methods_text"):
         parts.append(cmp_.methods_text())
+    parts.extend(_lab_methods(result))
     return " ".join(parts)
 
 
@@ -203,6 +204,7 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
         sec, v, t = _model_sections(result, labels, add)
         sections.extend(sec)
         verdicts.extend(v)
+    sections.extend(_lab_sections(result, labels, add))
 
     tables = {"states": (["state", "vertex", "occupancy", "mean_dwell_s"],
                          [[s, t, float(o), float(m)] for s, (t, o, m) in
@@ -383,3 +385,210 @@ def _comparison_tables(c) -> dict:
         out["nulls"] = (["null", "verdict", "p_network_better", "p_null_better",
                          "n_surrogates"], nrows)
     return out
+
+
+# --------------------------------------------------------------------------- Amendment 7
+def _pct(x) -> str:
+    return "n/a" if x is None or not np.isfinite(x) else f"{100 * float(x):.0f}%"
+
+
+def _lab_sections(result, labels, add) -> list:
+    """Sections for end-of-window decoding, the robustness panel and drift."""
+    sections = []
+    sf = result.state_fit
+    es = getattr(result, "end_state", None)
+    if es:
+        first = next(iter(es.values()))
+        what = "balanced accuracy" if first.score == "balanced_accuracy" else "accuracy"
+        blocks = [
+            "Can the state at the end of the analysis window tell what kind of trial it was "
+            "(the remembered item, the choice, the outcome)? For each categorical trial "
+            "label, a nearest-centroid classifier predicts the label from the state posterior "
+            f"averaged over the last {first.end_fraction:.0%} of the window"
+            if first.feature == "posterior" else
+            "Can the state at the end of the analysis window tell what kind of trial it was? "
+            "For each categorical trial label, a nearest-centroid classifier predicts the "
+            "label from the state assigned to the last bin",
+        ]
+        blocks[0] += (f", scored by {first.n_folds}-fold cross-validation ({what}); the "
+                      "p-value compares it with the same classifier on shuffled labels.")
+        fig = plots.decoding_accuracy(list(es), [v.value for v in es.values()],
+                                      [v.null for v in es.values()],
+                                      [v.chance for v in es.values()],
+                                      [v.p_value for v in es.values()],
+                                      ylabel=f"cross-validated {what}")
+        add(blocks, fig, "end_state_decoding",
+            f"Cross-validated {what} of predicting each trial label from the end-of-window "
+            "state (diamond), its distribution with shuffled labels (box: quartiles, "
+            "whiskers: 2.5-97.5 percentiles) and chance (dashed).")
+        for v in es.values():
+            blocks.append(Verdict(
+                f"'{v.label}' from the end-of-window state",
+                "above_chance" if v.p_value <= 0.05 else "not_above_chance", v.p_value,
+                v.text(), assumptions={
+                    "feature": (f"posterior averaged over the last {v.end_fraction:.0%} of "
+                                "the window" if v.feature == "posterior"
+                                else "state of the last bin"),
+                    "classifier": "nearest class centroid (no tuning)",
+                    "cross-validation": f"{v.n_folds} folds stratified by the label",
+                    "state model": "fitted on all trials without the labels",
+                    "trials": "exchangeable (no drift that follows the label)"}))
+        blocks.append(TableBlock(
+            "end_state_decoding", ["label", "levels", "n_trials", "score", "value", "chance",
+                                   "null_mean", "p_value", "n_permutations", "accuracy",
+                                   "majority", "balanced_accuracy"],
+            [[v.label, len(v.levels), v.n_trials, v.score, v.value, v.chance, v.null_mean,
+              v.p_value, v.n_permutations, v.accuracy, v.majority, v.balanced_accuracy]
+             for v in es.values()],
+            caption="Decoding of trial labels from the end-of-window state."))
+        sections.append(Section("Trial labels from the end-of-window state", blocks))
+
+    rob = getattr(result, "robustness", None)
+    if rob is not None:
+        blocks = [_robustness_words(rob)]
+        names = [st.name for st in rob.settings]
+        fig = plots.robustness_panel(
+            names, rob.by_chosen_state("occupancy"), rob.by_chosen_state("mean_dwell_s"),
+            {"unassigned fraction": [st.unassigned_fraction for st in rob.settings],
+             "cube R²": [st.cube_r2 for st in rob.settings],
+             "agreement with chosen": [st.agreement for st in rob.settings]},
+            state_labels=labels)
+        add(blocks, fig, "robustness",
+            "The state analysis rerun with one state fewer and one more, the bin size halved "
+            "and doubled, and lower and higher posterior thresholds (shaded: the chosen "
+            "setting). Each chosen state is followed through its matched state "
+            "(Hungarian matching of state rate vectors); gaps: no state matched.")
+        h, rows = rob.table()
+        blocks.append(TableBlock("robustness", h, rows, caption="One row per setting. "
+                                 "states_found_again: chosen states matched with rate-"
+                                 "modulation correlation >= 0.8; agreement: fraction of "
+                                 "jointly assigned time in matched states."))
+        h, rows = rob.state_table()
+        blocks.append(TableBlock("robustness_states", h, rows, max_rows=12,
+                                 caption="One row per state of every setting, with the "
+                                         "chosen state it was matched to (-1: none)."))
+        blocks.append("Assumptions: refits keep the chosen posterior threshold and minimum "
+                      "segment duration, fit their vertex codes in the chosen analysis's "
+                      "latent space (so cube R² is comparable), fix their number of states "
+                      "(no new choice) and skip the discreteness test; the threshold "
+                      "settings decode the chosen model again without refitting it.")
+        sections.append(Section("Robustness of the state analysis", blocks))
+
+    ud = getattr(result, "unit_drift", None)
+    sd = getattr(result, "state_drift", None)
+    if ud is not None and sd is not None:
+        n_d, n_u = int(ud.drifting.sum()), ud.drifting.size
+        strat = (f", compared within each value of '{sd.stratified_by}' so that a changing "
+                 "mix of trial types does not pass for drift" if sd.stratified_by else "")
+        blocks = [
+            f"{n_d} of {n_u} units ({_pct(ud.fraction_drifting)}) change their rate steadily "
+            "across the session (Spearman correlation of the per-trial rate with the trial "
+            f"index, Benjamini-Hochberg false discovery rate {ud.alpha:g}). State occupancy in "
+            f"{sd.n_blocks} blocks of consecutive trials{strat}: chi-square "
+            f"{sd.statistic:.1f}, permutation p = {sd.p_value:.3g} ({sd.n_permutations} "
+            "reassignments of whole trials to blocks). "
+            + ("Occupancy differs between parts of the session beyond what reshuffling "
+               "trials gives: states found on the whole session may mix periods of "
+               "different behaviour or recording quality." if sd.p_value <= 0.05 else
+               "Occupancy does not differ between parts of the session beyond what "
+               "reshuffling trials gives."),
+            f"The chi-square p-value that treats every bin as independent "
+            f"({sd.p_asymptotic:.2g}) is shown only for comparison: bins within a dwell are "
+            "not independent, so it is far too small and should not be used."]
+        fig = plots.drift_panel(ud.rho, ud.drifting, sd.occupancy, p_value=sd.p_value,
+                                state_labels=labels,
+                                note=f"tested within each '{sd.stratified_by}'"
+                                if sd.stratified_by else "")
+        add(blocks, fig, "drift",
+            "Left: trend of every unit's rate across trials (Spearman rho), drifting units "
+            "highlighted. Right: state occupancy in consecutive blocks of trials.")
+        h, rows = sd.table()
+        blocks.append(TableBlock("state_drift", h, rows,
+                                 caption="State occupancy per block of consecutive trials."))
+        order = np.argsort(np.nan_to_num(ud.q_value, nan=2.0), kind="stable")
+        urows = ud.rows()
+        blocks.append(TableBlock("unit_drift", ["unit", "rho", "p_value", "q_value",
+                                                "drifting", "relative_change"],
+                                 [urows[i] for i in order], max_rows=15,
+                                 caption="Units sorted by q-value; relative_change: fitted "
+                                         "change from first to last trial over the mean "
+                                         "rate."))
+        blocks.append("Assumptions: trials are in session order of their start times; rates "
+                      "are counted inside the analysis window; a trend in the task (e.g. "
+                      "more errors late in the session) also shows up as drift.")
+        sections.append(Section("Drift across the session", blocks))
+    return sections
+
+
+def _lab_methods(result) -> list:
+    """Methods sentences for end-of-window decoding, robustness and drift."""
+    out = []
+    es = getattr(result, "end_state", None)
+    if es:
+        v = next(iter(es.values()))
+        feat = (f"the state posterior averaged over the last {v.end_fraction:.0%} of the "
+                "analysis window" if v.feature == "posterior" else
+                "the state assigned to the last bin of the analysis window")
+        out.append(f"Each categorical trial label was predicted from {feat} by a "
+                   f"nearest-centroid classifier in {v.n_folds}-fold cross-validation "
+                   f"stratified by the label ({v.score.replace('_', ' ')}, mean over folds); "
+                   f"the p-value came from {v.n_permutations} permutations of the labels over "
+                   "trials with the same folds, p = (1 + b)/(B + 1).")
+    rob = getattr(result, "robustness", None)
+    if rob is not None:
+        out.append("For the robustness panel the Poisson HMM was refitted with a fixed "
+                   "number of states at the settings listed in the panel, or the chosen "
+                   "model was decoded again at other posterior thresholds; states were "
+                   "matched to the chosen ones by the Hungarian algorithm on the Euclidean "
+                   "distance between state rate vectors.")
+    ud, sd = getattr(result, "unit_drift", None), getattr(result, "state_drift", None)
+    if ud is not None and sd is not None:
+        out.append("Drift: each unit's per-trial rate was rank-correlated with the trial "
+                   "index (Spearman) and the p-values adjusted across units "
+                   f"(Benjamini-Hochberg, false discovery rate {ud.alpha:g}); state "
+                   f"occupancy in {sd.n_blocks} blocks of consecutive trials was compared by "
+                   "a chi-square statistic of homogeneity" +
+                   (f" summed over the levels of '{sd.stratified_by}'" if sd.stratified_by
+                    else "") + f", with a p-value from {sd.n_permutations} permutations of "
+                   "whole trials across blocks.")
+    return out
+
+
+def _robustness_words(rob) -> str:
+    """Plain words on whether the state analysis depends on the settings."""
+    by = {st.name: st for st in rob.settings}
+    s0 = rob.n_states
+    parts = []
+    fixed = [st for st in rob.settings[1:] if st.n_states == s0]
+    if fixed:
+        stable = [st.name for st in fixed if st.n_matched_similar == s0
+                  and (not np.isfinite(st.agreement) or st.agreement >= 0.8)]
+        unstable = [st.name for st in fixed if st.name not in stable]
+        parts.append(f"With the same number of states, {len(stable)} of {len(fixed)} "
+                     "settings find every chosen state again (rate-modulation correlation "
+                     ">= 0.8) and assign at least 80% of the jointly assigned time to the "
+                     "matched states" + (f"; not so for {', '.join(unstable)}." if unstable
+                                         else "."))
+        worst = max(fixed, key=lambda st: st.occupancy_tvd)
+        parts.append(f"The largest change of occupancy is {worst.occupancy_tvd:.3f} (total "
+                     f"variation distance, {worst.name}).")
+    more = [st for st in rob.settings[1:] if st.n_states > s0]
+    for st in more:
+        extra = [float(st.occupancy[k]) for k in range(st.n_states)
+                 if st.match[k] < 0 or np.nan_to_num(st.match_r[k]) < 0.8]
+        parts.append(f"With {st.n_states} states, {st.n_matched_similar} of the {s0} chosen "
+                     f"states are found again; the states without a close match take "
+                     f"{_pct(sum(extra))} of the assigned time.")
+    fewer = [st for st in rob.settings[1:] if 0 < st.n_states < s0]
+    for st in fewer:
+        found = {int(j) for j, r in zip(st.match, st.match_r)
+                 if j >= 0 and np.nan_to_num(r) >= 0.8}
+        lost = sorted(set(range(s0)) - found)
+        parts.append(f"With {st.n_states} states, {st.n_matched_similar} of the {s0} chosen "
+                     "states are found again" + (f" (not found: state "
+                                                 f"{', '.join(map(str, lost))})" if lost
+                                                 else "") + ".")
+    if "chosen" in by:
+        parts.append("A conclusion that changes between these settings rests on the "
+                     "setting, not on the data alone.")
+    return " ".join(parts)

@@ -11,7 +11,8 @@ Stages, what each one leaves in the folder, and the file that marks it complete
 stage     files                                                  marker
 ========  =====================================================  =================
 states    states.csv, posteriors.npz, summary.json (``states``,  state_model.npz
-          ``discreteness``), discreteness.npz, state_model.npz
+          ``discreteness``, lab checks), discreteness.npz,
+          lab_checks.npz, state_model.npz
 fit       summary.json (``model``), model.npz                    model.npz
 simulate  surrogate.nwb (the first fitted-network surrogate)     surrogate.nwb
 compare   summary.json (``comparison``), comparison.npz,         comparison.npz
@@ -29,7 +30,8 @@ which recomputes the data's decoding from the stored model); the network from
 ``model.npz``. ``compare`` regenerates the fitted-network surrogates from
 ``model.npz`` with the recorded seed and the same streams as ``run`` (surrogates are
 not stored: one NWB file each would be large), so its numbers equal those of ``run``.
-``discreteness.npz`` and ``comparison.npz`` hold the result objects as plain arrays
+``discreteness.npz``, ``lab_checks.npz`` (end-state decoding, robustness panel, drift)
+and ``comparison.npz`` hold the result objects as plain arrays
 plus a JSON layout (``__layout__``) of their fields: no pickles.
 """
 
@@ -61,8 +63,10 @@ MARKERS = {"states": "state_model.npz", "fit": "model.npz", "simulate": "surroga
 #: The summary.json block each stage adds.
 BLOCKS = {"states": "states", "fit": "model", "compare": "comparison"}
 #: Stage files removed when a run starts afresh (--force), so none is taken for current.
-STAGE_FILES = ("state_model.npz", "discreteness.npz", "model.npz", "surrogate.nwb",
-               "comparison.npz")
+STAGE_FILES = ("state_model.npz", "discreteness.npz", "lab_checks.npz", "model.npz",
+               "surrogate.nwb", "comparison.npz")
+#: RunResult attributes filled by pipeline.run_lab_checks, kept in lab_checks.npz.
+LAB_FIELDS = ("end_state", "robustness", "unit_drift", "state_drift")
 INPUT_FILE = "input.json"
 
 
@@ -367,6 +371,9 @@ def restore_states(folder, recording, cfg: dict, *, need_discreteness: bool = Fa
         res.state_fit = StateFit.from_arrays(_load_npz(folder, MARKERS["states"]), binned)
     if os.path.exists(folder.file("discreteness.npz")):
         res.discreteness = unpack_result(_load_npz(folder, "discreteness.npz"))
+    if os.path.exists(folder.file("lab_checks.npz")):
+        for name, value in unpack_result(_load_npz(folder, "lab_checks.npz")).items():
+            setattr(res, name, value)
     return res
 
 
@@ -421,6 +428,9 @@ def save_states(folder, result, *, seed: int, fresh: bool) -> None:
     _update_summary(folder, blocks, base=base)
     if result.discreteness is not None:
         folder.write_npz("discreteness.npz", **pack_result(result.discreteness))
+    lab = {k: getattr(result, k, None) for k in LAB_FIELDS}
+    if any(v is not None for v in lab.values()):
+        folder.write_npz("lab_checks.npz", **pack_result(lab))
     folder.write_npz(MARKERS["states"], **result.state_fit.to_arrays())
 
 

@@ -94,6 +94,59 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "alpha": Param(0.05, "significance level of the verdict", _num(0, 0.5, lo_open=True),
                        "a number in (0, 0.5]"),
     },
+    "decoding": {
+        "enabled": Param(True, "decode every categorical trial label (choice, outcome, item) "
+                               "from the state at the end of the analysis window",
+                         lambda v: isinstance(v, bool), "true or false"),
+        "feature": Param("posterior", "'posterior': the state posterior averaged over the "
+                                      "end of the window; 'state': the state assigned to "
+                                      "the last bin", _choice("posterior", "state"),
+                         "posterior or state"),
+        "score": Param("balanced_accuracy", "what the p-value tests: 'balanced_accuracy' "
+                                            "(mean recall over values; not inflated by a "
+                                            "common value) or 'accuracy'",
+                       _choice("balanced_accuracy", "accuracy"),
+                       "balanced_accuracy or accuracy"),
+        "end_fraction": Param(0.1, "fraction of the window, at its end, the posterior is "
+                                   "averaged over (at least one bin)",
+                              _num(0, 1, lo_open=True), "a number in (0, 1]"),
+        "n_folds": Param(5, "folds of the stratified cross-validation",
+                         _num(2, 100, integer=True), "a whole number from 2 to 100"),
+        "n_permutations": Param(199, "label permutations of the p-value",
+                                _num(1, 100000, integer=True), "a whole number >= 1"),
+    },
+    "robustness": {
+        "enabled": Param(True, "rerun the state analysis with the number of states -1/+1, "
+                               "the bin size halved and doubled, and other posterior "
+                               "thresholds (fixed state counts, no discreteness test)",
+                         lambda v: isinstance(v, bool), "true or false"),
+        "state_steps": Param([-1, 1], "changes of the number of states to refit",
+                             lambda v: isinstance(v, list) and all(
+                                 _num(-8, 8, integer=True)(x) and x != 0 for x in v),
+                             "a list of non-zero whole numbers from -8 to 8"),
+        "bin_factors": Param([0.5, 2.0], "bin sizes to refit at, as multiples of "
+                                         "analysis.bin_size",
+                             lambda v: isinstance(v, list) and all(
+                                 _num(0.05, 20, lo_open=False)(x) and x != 1 for x in v),
+                             "a list of numbers from 0.05 to 20 other than 1"),
+        "thresholds": Param([0.6, 0.95], "posterior thresholds to decode the chosen model "
+                                         "with again",
+                            lambda v: isinstance(v, list) and all(
+                                _num(0.5, 1.0, lo_open=True)(x) and x < 1 for x in v),
+                            "a list of numbers in (0.5, 1)"),
+    },
+    "drift": {
+        "enabled": Param(True, "test unit rates and state occupancy for drift across the "
+                               "session", lambda v: isinstance(v, bool), "true or false"),
+        "alpha": Param(0.05, "false discovery rate for calling a unit drifting "
+                             "(Benjamini-Hochberg)", _num(0, 0.5, lo_open=True),
+                       "a number in (0, 0.5]"),
+        "n_blocks": Param(3, "blocks of consecutive trials whose state occupancy is "
+                             "compared", _num(2, 20, integer=True),
+                          "a whole number from 2 to 20"),
+        "n_permutations": Param(199, "trial permutations of the occupancy test",
+                                _num(1, 100000, integer=True), "a whole number >= 1"),
+    },
     "network": {
         "rule": Param("optimized", "decoder rule: 'optimized' (least readout noise with "
                                    "stability margins; the only rule that kept every vertex "

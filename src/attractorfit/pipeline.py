@@ -29,7 +29,7 @@ __all__ = ["RunFolder", "RunResult", "run_states", "input_record", "versions",
 #: Files a run folder may hold; a folder holding anything else is not ours to overwrite.
 RUN_FILES = ("summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
              "surrogate.nwb", "report.html", "figures", "tables", "input.json",
-             "state_model.npz", "discreteness.npz", "comparison.npz")
+             "state_model.npz", "discreteness.npz", "lab_checks.npz", "comparison.npz")
 
 
 def versions() -> dict:
@@ -149,6 +149,10 @@ class RunResult:
     surrogates: list = field(default_factory=list)
     surrogate_example: tuple | None = None
     held_out: np.ndarray | None = None
+    end_state: dict | None = None
+    robustness: object = None
+    state_drift: object = None
+    unit_drift: object = None
 
 
 @contextmanager
@@ -219,8 +223,11 @@ def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int
                                      condition=cond, max_states=st["max_states"],
                                      rng=np.random.default_rng(disc_seed), n_jobs=n_jobs,
                                      progress=progress)
-    return RunResult(config=cfg, recording=recording, binned=analysed, state_fit=state_fit,
-                     discreteness=disc)
+    result = RunResult(config=cfg, recording=recording, binned=analysed, state_fit=state_fit,
+                       discreteness=disc)
+    with _deterministic_threads():
+        run_lab_checks(result, seed=seed)
+    return result
 
 
 def base_summary(result: RunResult, *, seed: int) -> dict:
@@ -238,6 +245,7 @@ def base_summary(result: RunResult, *, seed: int) -> dict:
         "analysis": {"bin_size_s": b.bin_size, "align": cfg["analysis"]["align"] or None,
                      "window": list(cfg["analysis"]["window"]) or None,
                      "unit_ids": list(b.unit_ids)},
+        **lab_summary(result),
     }
 
 
@@ -429,3 +437,73 @@ def compare_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
 def _note(progress: bool, text: str) -> None:
     """Log a stage (shown with --verbose)."""
     log.info(text)
+
+
+def run_lab_checks(result: RunResult, *, seed: int = 0) -> RunResult:
+    """End-of-window decoding, the robustness panel and drift (DESIGN Amendment 7).
+
+    Each part runs when its configuration section says ``enabled = true`` and fills
+    ``result.end_state`` (``{label: EndStateDecoding}``), ``result.robustness``
+    (``RobustnessPanel``), ``result.state_drift`` (``StateDrift``) and
+    ``result.unit_drift`` (``UnitDrift``). Streams: children 7, 8 and 9 of
+    ``SeedSequence(seed)`` (run_states uses 0-1, run_model 2-6), so these checks never
+    change the random numbers of another stage.
+    """
+    from attractorfit.states import decode_end_state, state_drift, state_robustness
+    from attractorfit.stats import unit_drift
+
+    cfg, b, sf = result.config, result.binned, result.state_fit
+    dec_seed, rob_seed, drift_seed = np.random.SeedSequence(seed).spawn(10)[7:]
+    dc = cfg.get("decoding", {})
+    if dc.get("enabled") and b.n_trials >= 4:
+        result.end_state = decode_end_state(
+            sf.decoding, categorical_labels(b.labels), end_fraction=dc["end_fraction"],
+            feature=dc["feature"], score=dc["score"], n_folds=dc["n_folds"],
+            n_permutations=dc["n_permutations"], rng=np.random.default_rng(dec_seed))
+    rc = cfg.get("robustness", {})
+    if rc.get("enabled"):
+        a = cfg["analysis"]
+        rebinned = {}
+        for f in rc["bin_factors"]:
+            name = {0.5: "bin/2", 2.0: "bin*2"}.get(float(f), f"bin x{float(f):g}")
+            sub = {**cfg, "analysis": {**a, "bin_size": a["bin_size"] * float(f)}}
+            rb = bin_for_analysis(result.recording, sub)
+            if np.array_equal(rb.trial_index, b.trial_index) and rb.n_bins >= 2:
+                rebinned[name] = rb
+            else:
+                log.info("robustness: bin size x%g changes the analysed trials; left out", f)
+        result.robustness = state_robustness(
+            b, sf, state_steps=[int(x) for x in rc["state_steps"]], rebinned=rebinned,
+            thresholds=rc["thresholds"], rng=np.random.default_rng(rob_seed))
+    de = cfg.get("drift", {})
+    if de.get("enabled") and b.n_trials >= max(3, de["n_blocks"]):
+        order = np.argsort(b.trial_index, kind="stable")
+        rate = np.stack([x.sum(axis=0, dtype=np.float64) / (max(len(x), 1) * b.bin_size)
+                         for x in b.sequences()])[order]
+        result.unit_drift = unit_drift(rate, unit_ids=b.unit_ids, alpha=de["alpha"])
+        cond = _condition_column(b, cfg)
+        result.state_drift = state_drift(sf.decoding, n_blocks=de["n_blocks"],
+                                         n_permutations=de["n_permutations"],
+                                         trial_order=b.trial_index,
+                                         condition=b.labels[cond] if cond else None,
+                                         rng=np.random.default_rng(drift_seed))
+        result.state_drift.stratified_by = cond
+    return result
+
+
+def lab_summary(result: RunResult) -> dict:
+    """summary.json blocks of :func:`run_lab_checks` (empty for parts not run)."""
+    out = {}
+    es, rob = getattr(result, "end_state", None), getattr(result, "robustness", None)
+    ud, sd = getattr(result, "unit_drift", None), getattr(result, "state_drift", None)
+    if es is not None:
+        out["end_state_decoding"] = {k: v.to_dict() for k, v in es.items()}
+    if rob is not None:
+        out["robustness"] = rob.summary_block()
+    if ud is not None or sd is not None:
+        out["drift"] = {}
+        if ud is not None:
+            out["drift"]["units"] = ud.summary_block()
+        if sd is not None:
+            out["drift"]["states"] = sd.summary_block()
+    return out

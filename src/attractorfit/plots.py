@@ -56,6 +56,7 @@ __all__ = [
     "dwell_survival", "transition_matrices", "rate_scatter", "distribution_compare",
     "distribution_panels", "state_by_condition", "pattern_overlap_time",
     "null_distribution", "model_diagnostics",
+    "decoding_accuracy", "robustness_panel", "drift_panel",
 ]
 
 #: The Okabe-Ito colour-blind-safe set (hex).
@@ -1299,6 +1300,210 @@ def model_diagnostics(margins, residuals, readout_noise_ratio, *, capacity, load
                    Patch(facecolor="#BBBBBB", hatch="//", edgecolor="#333333",
                          label="unused vertex (stable = spurious attractor)")]
     _legend_outside(fig, handles)
+    if title:
+        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    return _finish(fig)
+
+
+# --------------------------------------------------------------------------- lab checks
+def decoding_accuracy(names, values, nulls, chance, p_values, *,
+                      ylabel: str = "cross-validated balanced accuracy", title=None) -> Figure:
+    """Decoding score of each trial label with its permutation null and chance level.
+
+    Parameters
+    ----------
+    names : sequence of str
+        Trial labels (one column each).
+    values : array (L,)
+        Observed cross-validated score of each label (fraction).
+    nulls : sequence of arrays
+        The score under each label permutation, per label (drawn as a box and
+        whiskers spanning the 2.5-97.5 percentiles).
+    chance : array (L,)
+        Chance level of each label (a dashed line).
+    p_values : array (L,)
+        Permutation p-values, written above each label.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.patches import Rectangle
+
+    labels = [_text(n) for n in names]
+    n = len(labels)
+    if n == 0:
+        raise InputError("names: expected at least one label, got none")
+    val = _vector("values", values, n)
+    ch = _vector("chance", chance, n)
+    pv = _vector("p_values", p_values, n)
+    if len(nulls) != n:
+        raise InputError(f"nulls: expected {n} null distributions, got {len(nulls)}")
+    nl = [_vector(f"nulls[{i}]", v) for i, v in enumerate(nulls)]
+    fig = _new_figure(HALF_WIDTH * (1.2 if n <= 2 else 1.8), 3.0)
+    ax = fig.add_subplot()
+    x = np.arange(n)
+    for i in range(n):
+        v = nl[i][np.isfinite(nl[i])]
+        if v.size:
+            lo, q1, med, q3, hi = np.percentile(v, [2.5, 25, 50, 75, 97.5])
+            ax.add_patch(Rectangle((x[i] - 0.18, q1), 0.36, q3 - q1,
+                                   facecolor=NULL_COLORS[1], edgecolor="#555555", lw=0.6))
+            ax.plot([x[i] - 0.18, x[i] + 0.18], [med, med], color="#555555", lw=0.8)
+            ax.plot([x[i], x[i]], [lo, q1], color="#555555", lw=0.8)
+            ax.plot([x[i], x[i]], [q3, hi], color="#555555", lw=0.8)
+        ax.plot([x[i] - 0.32, x[i] + 0.32], [ch[i], ch[i]], color="black", ls="--", lw=1.0)
+        ax.plot(x[i], val[i], marker="D", ms=8, color="#D55E00", mec="black", mew=0.6,
+                ls="none")
+        ptxt = "n/a" if not np.isfinite(pv[i]) else f"{pv[i]:.3g}"
+        ax.text(x[i], 1.03, f"p = {ptxt}", ha="center", va="bottom", fontsize=_FS_SMALL,
+                transform=blended_transform_factory(ax.transData, ax.transAxes))
+    ax.set_xlim(-0.6, n - 0.4)
+    ax.set_ylim(0, 1.0)
+    ax.set_xticks(x, labels=labels, parse_math=False, rotation=30 if n > 3 else 0)
+    ax.set_xlabel("trial label")
+    ax.set_ylabel(_text(ylabel), parse_math=False)
+    _legend_outside(fig, [
+        Line2D([], [], marker="D", ms=7, color="#D55E00", mec="black", ls="none",
+               label="observed"),
+        Patch(facecolor=NULL_COLORS[1], edgecolor="#555555", label="shuffled labels"),
+        Line2D([], [], color="black", ls="--", label="chance")], ncols=3)
+    _title(ax, title)
+    return _finish(fig)
+
+
+def robustness_panel(setting_names, occupancy, mean_dwell_s, metrics, *, state_labels=None,
+                     title=None) -> Figure:
+    """How occupancy, dwell times and summary numbers change across analysis settings.
+
+    Parameters
+    ----------
+    setting_names : sequence of str
+        One name per setting (x axis), the chosen setting first.
+    occupancy : array (n_settings, S)
+        Occupancy of the state matched to each chosen state (NaN where none is).
+    mean_dwell_s : array (n_settings, S)
+        Mean dwell time (s) of the matched state.
+    metrics : dict {name: array (n_settings,)}
+        Fractions in [0, 1] shown in the third panel (e.g. unassigned fraction, cube
+        R^2, agreement with the chosen setting).
+    state_labels : sequence of str, optional
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    names = [_text(n) for n in setting_names]
+    m = len(names)
+    if m == 0:
+        raise InputError("setting_names: expected at least one setting, got none")
+    occ = check_array("occupancy", occupancy, ndim=2, finite=False)
+    dw = check_array("mean_dwell_s", mean_dwell_s, ndim=2, finite=False)
+    if occ.shape[0] != m or dw.shape != occ.shape:
+        raise InputError(f"occupancy, mean_dwell_s: expected shape ({m}, S) each, got "
+                         f"{occ.shape} and {dw.shape}")
+    s = occ.shape[1]
+    slabels = _labels(state_labels, s, "state_labels", lambda i: f"state {i}")
+    fig = _new_figure(FULL_WIDTH, 3.3)
+    axes = fig.subplots(1, 3)
+    x = np.arange(m)
+    handles = []
+    for k in range(s):
+        st = state_style(k)
+        for ax, val in ((axes[0], occ[:, k]), (axes[1], dw[:, k])):
+            ax.plot(x, val, marker=st["marker"], color=st["color"], ls=st["linestyle"],
+                    lw=1.0, ms=5, mec="black", mew=0.4)
+        handles.append(Line2D([], [], marker=st["marker"], color=st["color"],
+                              ls=st["linestyle"], mec="black", mew=0.4, label=slabels[k]))
+    axes[0].set_ylabel("occupancy (fraction of time)")
+    axes[0].set_ylim(0, min(1.0, np.nanmax(occ, initial=0.0) * 1.25) or 1.0)
+    _title(axes[0], "occupancy")
+    axes[1].set_ylabel("mean dwell (s)")
+    pos = dw[np.isfinite(dw) & (dw > 0)]
+    if pos.size and pos.max() / pos.min() > 5:
+        from matplotlib.ticker import FuncFormatter
+
+        axes[1].set_yscale("log")
+        axes[1].yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+        axes[1].yaxis.set_minor_formatter(FuncFormatter(lambda v, _: ""))
+    _title(axes[1], "dwell time")
+    markers = ("o", "s", "^", "D", "v")
+    for j, (name, val) in enumerate(metrics.items()):
+        v = _vector(f"metrics[{name!r}]", val, m)
+        axes[2].plot(x, v, marker=markers[j % len(markers)], ls=":", lw=0.8, ms=5,
+                     color=NULL_COLORS[2] if j % 2 else DATA_COLOR, label=_text(name))
+    axes[2].set_ylim(-0.02, 1.05)
+    axes[2].set_ylabel("fraction")
+    axes[2].legend(fontsize=_FS_SMALL, frameon=False, loc="center left")
+    _title(axes[2], "summary")
+    for ax in axes:
+        ax.set_xticks(x, labels=names, parse_math=False, rotation=60, ha="right")
+        ax.set_xlabel("setting")
+        ax.axvspan(-0.4, 0.4, color="#EEEEEE", zorder=0)
+    _legend_outside(fig, handles)
+    if title:
+        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    return _finish(fig)
+
+
+def drift_panel(rho, drifting, block_occupancy, *, p_value: float, state_labels=None,
+                note: str = "", title=None) -> Figure:
+    """Drift across the session: unit rate trends and state occupancy per block.
+
+    Parameters
+    ----------
+    rho : array (N,)
+        Spearman correlation of each unit's rate with the trial index.
+    drifting : array of bool (N,)
+        Units called drifting (after the false-discovery-rate correction).
+    block_occupancy : array (n_blocks, S)
+        Occupancy of each state in each block of consecutive trials.
+    p_value : float
+        p-value of the occupancy-homogeneity test, written on the right panel.
+    state_labels : sequence of str, optional
+    note : str
+        A short line added to the right panel's title (e.g. what the test is
+        stratified by).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    r = _vector("rho", rho)
+    d = _vector("drifting", drifting, r.size).astype(bool)
+    occ = check_array("block_occupancy", block_occupancy, ndim=2, finite=False)
+    nb, s = occ.shape
+    slabels = _labels(state_labels, s, "state_labels", lambda i: f"state {i}")
+    fig = _new_figure(FULL_WIDTH, 3.0)
+    ax0, ax1 = fig.subplots(1, 2)
+    ok = np.isfinite(r)
+    edges = np.linspace(-1, 1, 21)
+    ax0.hist([r[ok & ~d], r[ok & d]], bins=edges, stacked=True,
+             color=[NULL_COLORS[0], "#D55E00"], edgecolor="#333333", linewidth=0.4,
+             label=["no significant trend", "drifting (FDR-corrected)"])
+    ax0.set_xlabel("rate vs trial index (Spearman rho)")
+    ax0.set_ylabel("number of units")
+    from matplotlib.ticker import MaxNLocator
+
+    ax0.yaxis.set_major_locator(MaxNLocator(integer=True))
+    ax0.set_ylim(0, ax0.get_ylim()[1] * 1.35)
+    ax0.legend(fontsize=_FS_SMALL, frameon=False, loc="upper left")
+    _title(ax0, f"units: {int(d.sum())} of {r.size} drift")
+    x = np.arange(nb)
+    bottom = np.zeros(nb)
+    for k in range(s):
+        st = state_style(k)
+        v = np.nan_to_num(occ[:, k])
+        ax1.bar(x, v, bottom=bottom, color=st["color"], hatch=st["hatch"] or None,
+                edgecolor="#333333", linewidth=0.4, label=slabels[k], width=0.7)
+        bottom += v
+    ax1.set_xticks(x, labels=[f"block {i + 1}" for i in range(nb)])
+    ax1.set_xlabel("consecutive trials, session order")
+    ax1.set_ylabel("occupancy (fraction of time)")
+    ax1.set_ylim(0, 1.0)
+    ptxt = "n/a" if p_value is None or not np.isfinite(p_value) else f"{float(p_value):.3g}"
+    _title(ax1, f"states by block (p = {ptxt})" + (f"\n{_text(note)}" if note else ""))
+    ax1.legend(fontsize=_FS_SMALL, frameon=False, loc="center left", bbox_to_anchor=(1.0, 0.5))
     if title:
         fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
     return _finish(fig)

@@ -36,3 +36,19 @@ __all__ += [
     "decode_posteriors", "kaplan_meier", "StateFit", "analyse_states", "ContinuousNull",
     "DiscretenessResult", "discreteness_test", "fit_continuous_null",
 ]
+
+# Amendment 7: end-of-window decoding, robustness panel, drift of state use
+from attractorfit.states._end_state import (EndStateDecoding,  # noqa: E402
+                                            centroid_permutation_test, decode_end_state,
+                                            end_state_features, stratified_folds)
+from attractorfit.states._robustness import (RobustnessPanel,  # noqa: E402
+                                             RobustnessSetting, StateDrift,
+                                             chi_square_homogeneity, match_states,
+                                             state_drift, state_robustness)
+
+__all__ += [
+    "EndStateDecoding", "centroid_permutation_test", "decode_end_state",
+    "end_state_features", "stratified_folds", "RobustnessPanel", "RobustnessSetting",
+    "StateDrift", "chi_square_homogeneity", "match_states", "state_drift",
+    "state_robustness",
+]
