@@ -99,3 +99,18 @@ def test_report_sections_and_tables(result, tmp_path):
 def test_config_checks(section, key, value, match):
     with pytest.raises(InputError, match=match):
         resolve_config({section: {key: value}})
+
+
+def test_a_failing_check_is_skipped_with_a_warning(recording, monkeypatch):
+    """A secondary check the data cannot support warns and leaves the run going."""
+    import attractorfit.states as states
+    from attractorfit.errors import InputWarning
+
+    def refuse(*args, **kw):
+        raise InputError("state_steps: too few states to step down (invented for the test)")
+
+    monkeypatch.setattr(states, "state_robustness", refuse)
+    with pytest.warns(InputWarning, match="robustness panel skipped: state_steps"):
+        res = pipeline.run_states(recording, resolve_config(CFG), seed=2, discreteness=False)
+    assert res.robustness is None and "robustness" not in pipeline.base_summary(res, seed=2)
+    assert res.end_state is not None and res.state_drift is not None

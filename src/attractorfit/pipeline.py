@@ -12,6 +12,7 @@ import hashlib
 import logging
 import os
 import platform
+import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
@@ -19,7 +20,7 @@ import numpy as np
 
 from attractorfit._output import atomic_writer, write_csv, write_json
 from attractorfit.config import check_config_for_data, dumps_config, resolve_config
-from attractorfit.errors import InputError
+from attractorfit.errors import InputError, InputWarning
 
 log = logging.getLogger("attractorfit")
 
@@ -448,6 +449,10 @@ def run_lab_checks(result: RunResult, *, seed: int = 0) -> RunResult:
     ``result.unit_drift`` (``UnitDrift``). Streams: children 7, 8 and 9 of
     ``SeedSequence(seed)`` (run_states uses 0-1, run_model 2-6), so these checks never
     change the random numbers of another stage.
+
+    These checks are secondary: a part the data cannot support (too few trials of a
+    label, a bin size that leaves too few bins) is skipped with an InputWarning naming
+    the reason, instead of stopping the run.
     """
     from attractorfit.states import decode_end_state, state_drift, state_robustness
     from attractorfit.stats import unit_drift
@@ -455,40 +460,57 @@ def run_lab_checks(result: RunResult, *, seed: int = 0) -> RunResult:
     cfg, b, sf = result.config, result.binned, result.state_fit
     dec_seed, rob_seed, drift_seed = np.random.SeedSequence(seed).spawn(10)[7:]
     dc = cfg.get("decoding", {})
-    if dc.get("enabled") and b.n_trials >= 4:
-        result.end_state = decode_end_state(
-            sf.decoding, categorical_labels(b.labels), end_fraction=dc["end_fraction"],
-            feature=dc["feature"], score=dc["score"], n_folds=dc["n_folds"],
-            n_permutations=dc["n_permutations"], rng=np.random.default_rng(dec_seed))
+    with _skipped_on_bad_data("end-of-window decoding"):
+        if dc.get("enabled") and b.n_trials >= 4:
+            result.end_state = decode_end_state(
+                sf.decoding, categorical_labels(b.labels), end_fraction=dc["end_fraction"],
+                feature=dc["feature"], score=dc["score"], n_folds=dc["n_folds"],
+                n_permutations=dc["n_permutations"], rng=np.random.default_rng(dec_seed))
     rc = cfg.get("robustness", {})
-    if rc.get("enabled"):
-        a = cfg["analysis"]
-        rebinned = {}
-        for f in rc["bin_factors"]:
-            name = {0.5: "bin/2", 2.0: "bin*2"}.get(float(f), f"bin x{float(f):g}")
-            sub = {**cfg, "analysis": {**a, "bin_size": a["bin_size"] * float(f)}}
-            rb = bin_for_analysis(result.recording, sub)
-            if np.array_equal(rb.trial_index, b.trial_index) and rb.n_bins >= 2:
-                rebinned[name] = rb
-            else:
-                log.info("robustness: bin size x%g changes the analysed trials; left out", f)
-        result.robustness = state_robustness(
-            b, sf, state_steps=[int(x) for x in rc["state_steps"]], rebinned=rebinned,
-            thresholds=rc["thresholds"], rng=np.random.default_rng(rob_seed))
+    with _skipped_on_bad_data("robustness panel"):
+        if rc.get("enabled"):
+            a = cfg["analysis"]
+            rebinned = {}
+            for f in rc["bin_factors"]:
+                name = {0.5: "bin/2", 2.0: "bin*2"}.get(float(f), f"bin x{float(f):g}")
+                sub = {**cfg, "analysis": {**a, "bin_size": a["bin_size"] * float(f)}}
+                try:
+                    rb = bin_for_analysis(result.recording, sub)
+                except InputError as exc:
+                    log.info("robustness: bin size x%g left out: %s", f, exc)
+                    continue
+                if np.array_equal(rb.trial_index, b.trial_index) and rb.n_bins >= 2:
+                    rebinned[name] = rb
+                else:
+                    log.info("robustness: bin size x%g changes the analysed trials; "
+                             "left out", f)
+            result.robustness = state_robustness(
+                b, sf, state_steps=[int(x) for x in rc["state_steps"]], rebinned=rebinned,
+                thresholds=rc["thresholds"], rng=np.random.default_rng(rob_seed))
     de = cfg.get("drift", {})
-    if de.get("enabled") and b.n_trials >= max(3, de["n_blocks"]):
-        order = np.argsort(b.trial_index, kind="stable")
-        rate = np.stack([x.sum(axis=0, dtype=np.float64) / (max(len(x), 1) * b.bin_size)
-                         for x in b.sequences()])[order]
-        result.unit_drift = unit_drift(rate, unit_ids=b.unit_ids, alpha=de["alpha"])
-        cond = _condition_column(b, cfg)
-        result.state_drift = state_drift(sf.decoding, n_blocks=de["n_blocks"],
-                                         n_permutations=de["n_permutations"],
-                                         trial_order=b.trial_index,
-                                         condition=b.labels[cond] if cond else None,
-                                         rng=np.random.default_rng(drift_seed))
-        result.state_drift.stratified_by = cond
+    with _skipped_on_bad_data("drift diagnostics"):
+        if de.get("enabled") and b.n_trials >= max(3, de["n_blocks"]):
+            order = np.argsort(b.trial_index, kind="stable")
+            rate = np.stack([x.sum(axis=0, dtype=np.float64) / (max(len(x), 1) * b.bin_size)
+                             for x in b.sequences()])[order]
+            result.unit_drift = unit_drift(rate, unit_ids=b.unit_ids, alpha=de["alpha"])
+            cond = _condition_column(b, cfg)
+            result.state_drift = state_drift(sf.decoding, n_blocks=de["n_blocks"],
+                                             n_permutations=de["n_permutations"],
+                                             trial_order=b.trial_index,
+                                             condition=b.labels[cond] if cond else None,
+                                             rng=np.random.default_rng(drift_seed))
+            result.state_drift.stratified_by = cond
     return result
+
+
+@contextmanager
+def _skipped_on_bad_data(what: str):
+    """Turn an InputError inside a secondary check into a warning (the run goes on)."""
+    try:
+        yield
+    except InputError as exc:
+        warnings.warn(f"{what} skipped: {exc}", InputWarning, stacklevel=3)
 
 
 def lab_summary(result: RunResult) -> dict:
