@@ -115,7 +115,7 @@ START_WINDOW_S = 0.2
 #: Simulated seconds per calibration evaluation of the tau_s search (trials of the data's
 #: lengths).
 CALIBRATION_SECONDS = 120.0
-#: Simulated seconds per evaluation of the depth rounds (at most the training trials').
+#: Simulated seconds per evaluation of the occupancy rounds (at most the training trials').
 DEPTH_CALIBRATION_SECONDS = 420.0
 #: Readout noise s.d. over vertex spacing where the tau_s search starts.
 START_NOISE_RATIO = 0.4
@@ -797,8 +797,8 @@ class NetworkFit:
     dwell_reached : bool
         The dwell target was met within tolerance inside ``tau_s_range``.
     requested_margins : ndarray (S,)
-        Margins the optimized rule was asked for at each vertex after the depth
-        adjustment (NaN for the other rules).
+        Margins the optimized rule was asked for at each vertex (``margin``; NaN for the
+        other rules).
     state_dims : int
         Code length of the state model (``rank`` is larger when private axes were
         appended).
@@ -807,8 +807,8 @@ class NetworkFit:
     n_calibration_trials : int
         Trials per evaluation of the ``tau_s`` search.
     history : dict of ndarray
-        ``tau_s``, ``mean_dwell_s``, ``occupancy_tvd``, ``dwell_loss``, ``loss``, depth
-        ``round`` and ``n_trials`` simulated, for every calibration evaluation.
+        ``tau_s``, ``mean_dwell_s``, ``occupancy_tvd``, ``dwell_loss``, ``loss``, occupancy
+        ``round`` (0: the first tau_s search) and ``n_trials`` simulated, for every calibration evaluation.
     data_isi_cv : float
         The data's median within-trial ISI CV (NaN when not measured).
     noise_clipped : bool
@@ -1430,8 +1430,8 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     -----
     Cost: each evaluation of the ``tau_s`` search simulates ``n_calibration_sims`` trials
     (about 120 s of network time by default: some 1 s for 64 neurons at ``dt = 1e-4``) and
-    decodes them; a depth round simulates up to 420 s. At most ``max_evaluations``
-    simulations in all. The optimized decoder is solved once per depth round.
+    decodes them; an occupancy round simulates up to 420 s. At most ``max_evaluations``
+    simulations in all. The optimized decoder is solved once per occupancy round.
 
     References
     ----------
