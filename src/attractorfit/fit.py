@@ -808,7 +808,8 @@ class NetworkFit:
         Trials per evaluation of the ``tau_s`` search.
     history : dict of ndarray
         ``tau_s``, ``mean_dwell_s``, ``occupancy_tvd``, ``dwell_loss``, ``loss``, occupancy
-        ``round`` (0: the first tau_s search) and ``n_trials`` simulated, for every calibration evaluation.
+        ``round`` (0: the first tau_s search) and ``n_trials`` simulated, for every
+        calibration evaluation.
     data_isi_cv : float
         The data's median within-trial ISI CV (NaN when not measured).
     noise_clipped : bool
