@@ -265,6 +265,29 @@ def test_per_vertex_margins_by_slope_scaling():
     np.testing.assert_allclose(0.05 * dec.decoder @ model.T, codes.T, atol=1e-8)
 
 
+def test_pattern_weights_give_the_weighted_minimum_norm_decoder():
+    # With slopes so small that every vertex is stable (J ~ -I), the optimized rule is the
+    # weighted minimum-norm solution of tau_s D R = X: min sum_j w_j |D[:, j]|^2 with
+    # w_j = sum_mu c_mu r_j^mu, i.e. D = X (R^T W^-1 R)^-1 R^T W^-1 / tau_s (Lagrange
+    # multipliers; textbook closed form, e.g. Nocedal & Wright 2006, sec. 16.1), tol 1e-8.
+    codes, enc, model, slopes = _patterns()
+    tau = 0.05
+    c = np.array([4.0, 1.0, 0.5, 2.0])
+    dec = fit_decoder("optimized", model, codes, enc, slopes * 1e-3, tau_s=tau, margin=0.0,
+                      weights=c)
+    r = model.T                                                      # N x P
+    w_inv = 1.0 / (r @ c)
+    ref = codes.T @ np.linalg.solve(r.T @ (w_inv[:, None] * r), r.T * w_inv) / tau
+    np.testing.assert_allclose(dec.decoder, ref, rtol=1e-8, atol=1e-10 * np.abs(ref).max())
+    # a larger weight on pattern 0 buys a quieter readout there (and only costs others)
+    plain = fit_decoder("optimized", model, codes, enc, slopes * 1e-3, tau_s=tau, margin=0.0)
+    var = lambda d: (d ** 2 @ r).sum(axis=0)                        # noqa: E731
+    assert var(dec.decoder)[0] < var(plain.decoder)[0]
+    assert var(dec.decoder) @ np.ones(4) >= var(plain.decoder) @ np.ones(4) - 1e-12
+    with pytest.raises(InputError, match="pattern_weights: expected 4 finite numbers > 0"):
+        fit_decoder("optimized", model, codes, enc, slopes, tau_s=tau, weights=[1, 1, 0, 1])
+
+
 @pytest.mark.parametrize("rule", ["pseudoinverse", "hebbian"])
 def test_decoder_refit_at_tau_s_is_a_rescaling(rule):
     # fit_network refits D at each tau_s by rescaling the solution at a reference tau_s;
@@ -485,6 +508,52 @@ def test_network_refitted_from_its_own_output():
     assert f.rate_r2 > 0.98
 
 
+def test_rank_auto_adds_axes_until_the_rates_are_reproduced(small):
+    # Random (non-additive) rates of 4 states on 2-bit codes: an affine encoder cannot
+    # reproduce them at K = 2; "auto" appends one private axis (K = 3 = S - 1, exact).
+    rec, _ = switching_recording(n_units=24, n_states=4, n_trials=16, trial_duration=1.0,
+                                 rng=11)
+    binned = bin_spikes(rec, bin_size=0.02)
+    sf = analyse_states(binned, n_states=4, latent_dims=2, n_restarts=1, rng=0)
+    k0 = np.asarray(sf.vertices).shape[1]
+    plain = fit_network(binned, sf, recording=rec, rank=None, rng=1, **FAST)
+    auto = fit_network(binned, sf, recording=rec, rng=1, **FAST)           # default
+    assert plain.rank == k0 == 2 and plain.rate_r2 < 0.97
+    assert auto.rank == 3 and auto.state_dims == 2
+    assert auto.rate_r2 > 0.999
+    np.testing.assert_array_equal(auto.codes[:, :2], np.asarray(sf.vertices))
+    # K = 2 codes of 3 states already reproduce any rates: "auto" adds nothing
+    rec3, binned3, sf3 = small
+    assert fit_network(binned3, sf3, recording=rec3, rng=1, **FAST).rank == 2
+
+
+def test_occupancy_rounds_reweight_the_decoder(small):
+    rec, binned, sf = small
+    f = fit_network(binned, sf, recording=rec, rule="optimized", rng=5, n_calibration_sims=8,
+                    max_evaluations=6, depth_iterations=3, occupancy_tol=0.0)
+    w = f.vertex_weights
+    assert w.shape == (3,) and np.all(w > 0)
+    assert np.mean(np.log(w)) == pytest.approx(0.0, abs=1e-9)      # geometric mean 1
+    assert f.history["round"].max() >= 1 and f.n_simulations <= 6
+    # the network's decoder is the optimized decoder refitted with these weights
+    enc, bias = f.network.encoder, f.network.bias
+    slopes = np.asarray(transfer_slope(f.codes @ enc.T + bias, f.noise, dt=f.dt))
+    tau_ref = np.sqrt(0.01 * 0.3)            # middle of the default tau_s range
+    ref = fit_decoder("optimized", f.model_rates_hz, f.codes, enc, slopes, tau_s=tau_ref,
+                      margin=0.05, weights=w)
+    np.testing.assert_allclose(f.network.decoder, ref.decoder * tau_ref / f.tau_s,
+                               rtol=1e-9, atol=1e-12 * np.abs(ref.decoder).max())
+    np.testing.assert_allclose(f.tau_s * f.network.decoder @ f.model_rates_hz.T, f.codes.T,
+                               atol=1e-6)
+    blk = f.summary_block()
+    assert blk["vertex_weights"] == pytest.approx(w.tolist())
+    g = NetworkFit.from_arrays(f.to_arrays())
+    np.testing.assert_array_equal(g.vertex_weights, w)
+    # model files written before the weights existed still load
+    old = {k: v for k, v in f.to_arrays().items() if k != "vertex_weights"}
+    assert np.all(np.isnan(NetworkFit.from_arrays(old).summary_block()["vertex_weights"]))
+
+
 # ------------------------------------------------------------------------ bad input
 def test_bad_input_errors(small):
     rec, binned, sf = small
@@ -533,7 +602,7 @@ def test_bad_input_errors(small):
         fit_network(binned, _FakeStateFit(neg, sf.vertices))
     with pytest.raises(InputError, match="dt"):
         fit_network(binned, sf, dt=0.01)
-    with pytest.raises(InputError, match="rank: expected a whole number or 'full'"):
+    with pytest.raises(InputError, match="rank: expected a whole number, 'auto' or 'full'"):
         fit_network(binned, sf, rank="most")
     with pytest.raises(InputError, match="rank"):
         fit_network(binned, sf, rank=5)

@@ -154,11 +154,13 @@ PARAMETERS: dict[str, dict[str, Param]] = {
                                    "rule) or 'hebbian'",
                       _choice("pseudoinverse", "optimized", "hebbian"),
                       "one of pseudoinverse, optimized, hebbian"),
-        "rank": Param(0, "latent dimension K of the network: 0 uses the state model's code "
-                         "length; \"full\" adds private axes so any state rates can be fitted "
-                         "(slower for many states)",
-                      lambda v: v == "full" or _num(0, 64, integer=True)(v),
-                      "0, a whole number up to 64, or \"full\""),
+        "rank": Param("auto", "latent dimension K of the network: \"auto\" adds private "
+                              "axes to the state model's codes until the encoder reproduces "
+                              "the state rates (R^2 >= 0.97); 0 uses the code length; "
+                              "\"full\" adds axes so any state rates can be fitted (slower "
+                              "for many states)",
+                      lambda v: v in ("full", "auto") or _num(0, 64, integer=True)(v),
+                      "0, a whole number up to 64, \"auto\" or \"full\""),
         "hypercube": Param(False, "each model neuron reads one latent axis only (hypercube "
                                   "encoder)", lambda v: isinstance(v, bool), "true or false"),
         "extra_neurons": Param(0, "unrecorded model neurons added to lower readout shot "

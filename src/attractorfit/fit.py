@@ -30,9 +30,18 @@ The fit, step by step (DESIGN.md, network model and Amendments 1, 2, 3, 5):
    time equals the data's, where the model's dwell times and occupancy come from decoding
    simulated spikes with the data's state model (binned like the data), with the same
    random numbers at every step. ``D`` is refitted at each step.
-6. *Occupancy* (optimized rule). The stability margin asked of each vertex is a depth
-   knob (a lower bound on ``-max Re eig(J)``, never an equality: DESIGN Amendment 2);
-   a few rounds raise it at under-visited states and lower it at over-visited ones.
+6. *Occupancy* (optimized rule). The decoder's objective weighs each vertex's
+   predicted readout variance; a few rounds raise the weight (a quieter readout there)
+   at under-visited states and lower it at over-visited ones. Measured knob responses
+   (one 50-unit, 5-state recording, 1200 s of simulation per setting, common random
+   numbers): tripling one vertex's weight moved its occupancy the right way at 4 of 5
+   vertices; tripling one vertex's stability margin (the knob used before; a lower
+   bound, never an equality: DESIGN Amendment 2) moved it the wrong way at 3 of 5,
+   because the margin solution re-solves the whole decoder; a constant latent field
+   (bias_i += E[i] . h) moved occupancies reliably but, with margins near 0.05, shifts
+   the fixed points by about h (1 - m) / m, so vertices stopped being fixed points and
+   it was dropped. Neither knob is local, so the rounds are a damped fixed-point
+   iteration, not a Newton method.
 7. *Trial structure.* Surrogate trials have the data's analysis-window lengths and
    labels, and each starts at the vertex of a state drawn (stratified) from the
    distribution of the first state of the data's trials of the same condition.
@@ -106,12 +115,21 @@ START_WINDOW_S = 0.2
 #: Simulated seconds per calibration evaluation of the tau_s search (trials of the data's
 #: lengths).
 CALIBRATION_SECONDS = 120.0
-#: Simulated seconds per evaluation of the depth rounds (at most the training trials').
+#: Simulated seconds per evaluation of the occupancy rounds (at most the training trials').
 DEPTH_CALIBRATION_SECONDS = 420.0
 #: Readout noise s.d. over vertex spacing where the tau_s search starts.
 START_NOISE_RATIO = 0.4
-#: Range of per-vertex stability margins (units of 1 / tau_s) of the depth adjustment.
+#: Up to this many states, extend_codes chooses appended axes among all two-group splits.
+EXTEND_ENUMERATE = 10
+#: ``rank="auto"``: smallest code length whose encoder reaches this centred rate R^2
+#: (chosen from bench_fit.py: with encoder R^2 near 1 the surrogates' rate R^2 was 0.9-0.98).
+AUTO_RANK_R2 = 0.97
+#: Largest stability margin (units of 1 / tau_s) that may be asked of a vertex.
 MARGIN_RANGE = (0.005, 0.5)
+#: Occupancy rounds: range of the per-vertex readout-noise weights, and the floor added
+#: to occupancies before taking their ratio.
+WEIGHT_RANGE = (0.05, 20.0)
+OCC_EPS = 0.01
 #: Silent time (s) between consecutive surrogate trials.
 TRIAL_GAP_S = 0.5
 
@@ -465,7 +483,8 @@ def centred_rate_r2(target, model) -> float:
 
 
 # ============================================================================ decoder
-def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0.05):
+def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0.05,
+                weights=None):
     """Decoder by ``rule`` so that ``tau_s D r^mu = x^mu`` at every state (DecoderResult).
 
     Parameters
@@ -478,6 +497,9 @@ def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0
     tau_s : float
     margin : float or ndarray (S,)
         Optimized rule: stability margin asked of each vertex (lower bounds).
+    weights : ndarray (S,), optional
+        Optimized rule: weight of each vertex's readout variance in the objective
+        (``pattern_weights`` of :func:`~attractorfit.network.decoder_optimized`).
 
     Returns
     -------
@@ -507,7 +529,8 @@ def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         res = decoder_optimized(rates, x, tau_s=tau_s, encoder=encoder,
-                                slopes=slopes_t * scale[None, :], margin=m0)
+                                slopes=slopes_t * scale[None, :], margin=m0,
+                                pattern_weights=weights)
     res.margins = vertex_margins(res.decoder, encoder, slopes_t, tau_s=tau_s)
     res.success = bool(np.all(res.margins >= m * (1 - 2e-3) - 1e-9))
     return res
@@ -774,8 +797,8 @@ class NetworkFit:
     dwell_reached : bool
         The dwell target was met within tolerance inside ``tau_s_range``.
     requested_margins : ndarray (S,)
-        Margins the optimized rule was asked for at each vertex after the depth
-        adjustment (NaN for the other rules).
+        Margins the optimized rule was asked for at each vertex (``margin``; NaN for the
+        other rules).
     state_dims : int
         Code length of the state model (``rank`` is larger when private axes were
         appended).
@@ -784,8 +807,9 @@ class NetworkFit:
     n_calibration_trials : int
         Trials per evaluation of the ``tau_s`` search.
     history : dict of ndarray
-        ``tau_s``, ``mean_dwell_s``, ``occupancy_tvd``, ``dwell_loss``, ``loss``, depth
-        ``round`` and ``n_trials`` simulated, for every calibration evaluation.
+        ``tau_s``, ``mean_dwell_s``, ``occupancy_tvd``, ``dwell_loss``, ``loss``, occupancy
+        ``round`` (0: the first tau_s search) and ``n_trials`` simulated, for every
+        calibration evaluation.
     data_isi_cv : float
         The data's median within-trial ISI CV (NaN when not measured).
     noise_clipped : bool
@@ -815,6 +839,10 @@ class NetworkFit:
     train_trials : ndarray of int or None
     notes : list of str
         Plain sentences about anything that did not go to plan.
+    vertex_weights : ndarray (S,) or None
+        Optimized rule: weight of each vertex's readout variance in the decoder's
+        objective after the occupancy rounds (geometric mean 1; NaN or None for the
+        other rules).
     """
 
     network: LowRankNetwork
@@ -862,6 +890,12 @@ class NetworkFit:
     align: str | None = None
     train_trials: np.ndarray | None = None
     notes: list = field(default_factory=list)
+    vertex_weights: np.ndarray | None = None
+
+    def _weights(self) -> np.ndarray:
+        if self.vertex_weights is None:
+            return np.full(self.n_states, np.nan)
+        return np.asarray(self.vertex_weights, float).reshape(self.n_states)
 
     # ----------------------------------------------------------------- shape
     @property
@@ -1047,6 +1081,7 @@ class NetworkFit:
             "dwell_reached": bool(self.dwell_reached),
             "state_dims": int(self.state_dims),
             "requested_margins": [float(v) for v in self.requested_margins],
+            "vertex_weights": [float(v) for v in self._weights()],
             "n_simulations": int(self.n_simulations),
             "n_calibration_trials": int(self.n_calibration_trials),
             "target_mean_dwell_s": float(self.target_mean_dwell_s),
@@ -1117,6 +1152,7 @@ class NetworkFit:
                              else np.asarray(self.train_trials, np.int64)),
             "has_train_trials": np.bool_(self.train_trials is not None),
             "notes": np.asarray(self.notes, dtype=str).reshape(-1),
+            "vertex_weights": self._weights(),
         }
         for key, values in self.history.items():
             out[f"history__{key}"] = np.asarray(values, float)
@@ -1174,7 +1210,9 @@ class NetworkFit:
             window=window, align=str(get("align")) or None,
             train_trials=get("train_trials").astype(np.int64)
             if bool(get("has_train_trials")) else None,
-            notes=[str(x) for x in get("notes")])
+            notes=[str(x) for x in get("notes")],
+            vertex_weights=(np.asarray(d["vertex_weights"], float) if "vertex_weights" in d
+                            else None))
 
 
 def _plain_column(values) -> np.ndarray:
@@ -1209,10 +1247,16 @@ def _diagnose(net, codes, dt, rng):
 def extend_codes(codes, rank) -> np.ndarray:
     """Append private axes to vertex codes so that they become affinely independent.
 
-    Candidate axes are the one-state indicators (+1 for state ``s``, -1 for the others),
-    tried for s = 0, 1, ...; an axis is appended when it raises the rank of
-    ``[1, codes]``. With ``rank = S - 1`` the design ``[1, codes]`` is square and
-    invertible, so an affine encoder reproduces any state rates exactly.
+    An axis is appended when it raises the rank of ``[1, codes]``. With up to
+    ``EXTEND_ENUMERATE`` states every split of the states into two groups is a candidate,
+    and the one chosen is the one that leaves the pairwise Hamming distances between the
+    states' codes most even (least variance; then the most balanced split, then the
+    first in a fixed order). An axis that singles out one state (the one-state indicator,
+    used for more states) moves that state away from all the others, and the network
+    then rarely enters it (bench_fit.py: a 6-state recording with two indicator axes put
+    0.05 of the time in each of the singled-out states against 0.17 in the data). With
+    ``rank = S - 1`` the design ``[1, codes]`` is square and invertible, so an affine
+    encoder reproduces any state rates exactly.
 
     Parameters
     ----------
@@ -1232,17 +1276,32 @@ def extend_codes(codes, rank) -> np.ndarray:
     def design_rank(cols):
         return np.linalg.matrix_rank(np.column_stack([np.ones(s)] + cols).astype(float))
 
+    if s <= EXTEND_ENUMERATE:
+        cands = [np.array([1] + [1 - 2 * ((m >> b) & 1) for b in range(s - 1)])
+                 for m in range(1, 2 ** (s - 1))]
+    else:
+        cands = [np.where(np.arange(s) == j, 1, -1) for j in range(s)]
+    iu = np.triu_indices(s, 1)
     current = design_rank(out)
-    for j in range(s):
-        if len(out) >= rank:
+    while len(out) < rank:
+        dist = (np.column_stack(out)[:, None, :] != np.column_stack(out)[None, :, :]).sum(-1)
+        best, best_key = None, None
+        for i, cand in enumerate(cands):
+            if any(np.array_equal(cand, c) or np.array_equal(cand, -c) for c in out):
+                continue
+            if design_rank(out + [cand]) <= current:
+                continue
+            if s > EXTEND_ENUMERATE:
+                best = cand
+                break
+            d = (dist + (cand[:, None] != cand[None, :]))[iu]
+            key = (round(float(np.var(d)), 9), abs(int(cand.sum())), i)
+            if best_key is None or key < best_key:
+                best, best_key = cand, key
+        if best is None:
             break
-        cand = np.where(np.arange(s) == j, 1, -1)
-        if any(np.array_equal(cand, c) or np.array_equal(cand, -c) for c in out):
-            continue
-        r = design_rank(out + [cand])
-        if r > current:
-            out.append(cand)
-            current = r
+        out.append(best)
+        current += 1
     return np.column_stack(out).astype(np.int64)
 
 
@@ -1282,7 +1341,7 @@ def _check_state_fit(state_fit, n_units):
 
 
 def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, extra_neurons=0,
-                rank=None, tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None,
+                rank="auto", tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None,
                 condition=None, train_trials=None, n_calibration_sims=None, max_evaluations=14,
                 dwell_tol=0.05, margin=0.05, depth_iterations=3, occupancy_tol=0.03,
                 rng=None, progress=False) -> NetworkFit:
@@ -1303,12 +1362,16 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         Unrecorded model neurons added to lower the readout's shot noise (DESIGN
         Amendment 2); extra neuron ``j`` copies unit ``j mod N`` (same target rates).
         They are simulated but never part of a surrogate recording.
-    rank : int or "full", optional
-        Latent dimension K of the network. Default: the state model's code length. A
+    rank : int, "auto", "full" or None
+        Latent dimension K of the network. None: the state model's code length. A
         larger value appends private code axes to the states' codes (see
         :func:`extend_codes`) so that an affine encoder can reproduce more of each unit's
         state rates; ``"full"`` uses S - 1, with which any state rates are reproduced
-        exactly. The first axes stay the state model's codes.
+        exactly. ``"auto"`` (default) takes the smallest length from the state model's
+        upwards whose encoder reaches a centred rate R^2 of ``AUTO_RANK_R2`` (0.97),
+        keeping ``S (1 + K) < N`` (N model neurons) so that the optimized rule has
+        freedom beyond its fixed-point and stability constraints. The first axes stay
+        the state model's codes.
     tau_s_range : tuple of float
         Range (s) searched for the readout time constant.
     dt : float
@@ -1336,15 +1399,18 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         Stability margin (units of ``1 / tau_s``) the optimized rule asks of every vertex
         at first (a lower bound, not an equality: DESIGN Amendment 2).
     depth_iterations : int
-        Optimized rule only: rounds of per-vertex depth adjustment, run on a larger
+        Optimized rule only: rounds of occupancy adjustment, run on a larger
         calibration set (about the training trials' size, at most
         ``DEPTH_CALIBRATION_SECONDS`` of simulated time). Each round evaluates the
         current decoder at the current ``tau_s`` (searching ``tau_s`` again if the dwell
-        time moved out of tolerance); then the margin asked of each vertex is multiplied
-        by (data occupancy / model occupancy) of its state (clipped to [1/3, 3] per round
-        and to ``MARGIN_RANGE``) and the decoder refitted.
+        time moved out of tolerance); then the weight of each vertex's readout variance
+        in the decoder's objective is multiplied by (data occupancy / model occupancy)
+        of its state (clipped to [1/3, 3] per round and to ``WEIGHT_RANGE``) and the
+        decoder refitted. (Raising the stability margin of under-visited vertices
+        instead, as before, made them rarer as often as not: bench notes in the module
+        docstring.)
     occupancy_tol : float
-        Depth rounds stop once the calibration occupancy TVD is at most this.
+        Occupancy rounds stop once the calibration occupancy TVD is at most this.
     rng : None, int or numpy.random.Generator
         Randomness (calibration noise, first-state allocation, fixed-point search).
     progress : bool
@@ -1365,8 +1431,8 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     -----
     Cost: each evaluation of the ``tau_s`` search simulates ``n_calibration_sims`` trials
     (about 120 s of network time by default: some 1 s for 64 neurons at ``dt = 1e-4``) and
-    decodes them; a depth round simulates up to 420 s. At most ``max_evaluations``
-    simulations in all. The optimized decoder is solved once per depth round.
+    decodes them; an occupancy round simulates up to 420 s. At most ``max_evaluations``
+    simulations in all. The optimized decoder is solved once per occupancy round.
 
     References
     ----------
@@ -1406,10 +1472,14 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     n_units = binned.n_units
     rates_sf, codes = _check_state_fit(state_fit, n_units)
     n_states, k0 = codes.shape
+    auto_rank = isinstance(rank, str) and rank == "auto"
+    if auto_rank:
+        rank = None
     if rank is not None:
         if isinstance(rank, str):
             if rank != "full":
-                raise InputError(f"rank: expected a whole number or 'full', got {rank!r}")
+                raise InputError(f"rank: expected a whole number, 'auto' or 'full', got "
+                                 f"{rank!r}")
             rank = max(k0, n_states - 1)
         rank = check_int("rank", rank, low=k0, high=max(k0, n_states - 1))
         if rank > n_units:
@@ -1488,6 +1558,22 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     # ---------------------------------------------------------------- encoder
     enc_u, bias_u, model_u, unit_r2 = fit_encoder(target_rates, codes, noise=noise, dt=dt,
                                                   hypercube=hypercube)
+    if auto_rank:
+        # smallest code length whose encoder reproduces the state rates (centred R^2 >=
+        # AUTO_RANK_R2) while the optimized rule keeps freedom beyond its S (1 + K)
+        # constraints (S (1 + K) < N); else the largest such length
+        top = max(k0, min(n_states - 1, n_units, (n_units + extra_neurons - 1) // n_states - 1))
+        r_cur = k0
+        while (r_cur < top
+               and centred_rate_r2(target_rates, model_u) < AUTO_RANK_R2):
+            r_cur += 1
+            codes_r = extend_codes(codes, r_cur)
+            if codes_r.shape[1] == codes.shape[1]:
+                break
+            codes = codes_r
+            enc_u, bias_u, model_u, unit_r2 = fit_encoder(target_rates, codes, noise=noise,
+                                                          dt=dt, hypercube=hypercube)
+        k = codes.shape[1]
     copy = np.arange(extra_neurons) % n_units
     enc = np.vstack([enc_u, enc_u[copy]])
     bias = np.concatenate([bias_u, bias_u[copy]])
@@ -1503,6 +1589,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     # geometric middle of the range, where its tolerances are well scaled).
     tau_ref = math.sqrt(lo_tau * hi_tau)
     depth = np.full(n_states, float(margin))
+    weights = np.ones(n_states)
     dec1 = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=tau_ref, margin=depth)
 
     def build(tau, dec):
@@ -1546,7 +1633,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
 
     hist = {"tau_s": [], "mean_dwell_s": [], "occupancy_tvd": [], "dwell_loss": [],
             "loss": [], "round": [], "n_trials": []}
-    occs, decoders, depths = [], [], []
+    occs, decoders, wlist = [], [], []
     bar = None
     if progress:
         from tqdm import tqdm
@@ -1567,7 +1654,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
             hist[key].append(val)
         occs.append(occ)
         decoders.append(dec)
-        depths.append(depth.copy())
+        wlist.append(weights.copy())
         if bar is not None:
             bar.update(1)
             bar.set_postfix_str(f"tau_s={tau:.4g} dwell={dwell:.3g}s "
@@ -1653,11 +1740,15 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     best_round = search(min(max(x_start, bounds[0]), bounds[1]), dec1, 0, cal_small)
     stage2 = len(hist["tau_s"])
     if rule == "optimized" and depth_iterations > 0 and len(hist["tau_s"]) < max_evaluations:
-        # stage 2: per-vertex depth, on a calibration set of about the data's size (the
-        # occupancy of a small set is too noisy to steer by)
+        # stage 2: per-vertex readout-noise weights (optimized rule) on a calibration set
+        # of about the data's size (the occupancy of a small set is too noisy to steer
+        # by). A larger weight buys a quieter readout at that vertex; the response is not
+        # local (the whole decoder is re-solved), so each round multiplies the weights by
+        # the occupancy ratio data / model (clipped to [1/3, 3]) from the best weights so
+        # far and steps back half way (in log weight) after a round that did not help.
         dec_r = decoders[best_round]
         x = math.log(hist["tau_s"][best_round])
-        best_tvd, best_depth = np.inf, depth.copy()
+        best_tvd, best_w = np.inf, weights.copy()
         for round_ in range(1, depth_iterations + 1):
             if len(hist["tau_s"]) >= max_evaluations:
                 break
@@ -1668,20 +1759,19 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 last = len(hist["tau_s"]) - 1
             tvd_last = hist["occupancy_tvd"][last]
             if hist["dwell_loss"][last] <= tol and tvd_last < best_tvd:
-                best_tvd, best_depth = tvd_last, depths[last].copy()
+                best_tvd, best_w = tvd_last, weights.copy()
                 x = math.log(hist["tau_s"][last])
                 if tvd_last <= occupancy_tol:
                     break
-                # deepen the wells of under-visited states, flatten the over-visited ones
-                ratio = np.clip((target_occ + 0.01) / (occs[last] + 0.01), 1 / 3, 3.0)
-                depth = np.clip(best_depth * ratio, MARGIN_RANGE[0], MARGIN_RANGE[1])
+                ratio = np.clip((target_occ + OCC_EPS) / (occs[last] + OCC_EPS), 1 / 3, 3.0)
+                weights = np.clip(best_w * ratio, WEIGHT_RANGE[0], WEIGHT_RANGE[1])
             else:
-                # no better than the best so far: go back half way (in log margin)
-                depth = np.sqrt(best_depth * depth)
-            if np.allclose(depth, depths[last], rtol=1e-3):
+                weights = np.sqrt(best_w * weights)
+            weights = weights / math.exp(float(np.mean(np.log(weights))))
+            if round_ == depth_iterations or np.allclose(weights, wlist[last], rtol=1e-3):
                 break
             dec_r = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=tau_ref,
-                                margin=depth)
+                                margin=depth, weights=weights)
     if bar is not None:
         bar.close()
     dwell_ok = np.asarray(hist["dwell_loss"]) <= tol
@@ -1693,13 +1783,13 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     best = int(pool[np.argmin(np.asarray(hist["loss"])[pool])])
     tau = float(hist["tau_s"][best])
     dec = decoders[best]
-    depth = depths[best]
+    w_best = wlist[best]
     reached = bool(dwell_ok[best])
     if not reached:
         best = int(np.argmin(hist["dwell_loss"]))
         tau = float(hist["tau_s"][best])
         dec = decoders[best]
-        depth = depths[best]
+        w_best = wlist[best]
         dwell_b = hist["mean_dwell_s"][best]
         where = ("even at the largest tau_s" if dwell_b < target_dwell else
                  "even at the smallest tau_s")
@@ -1745,6 +1835,8 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         model_occupancy=occs[best], occupancy_tvd=float(hist["occupancy_tvd"][best]),
         loss=float(hist["loss"][best]), dwell_reached=reached,
         requested_margins=np.asarray(depth, float) if rule == "optimized"
+        else np.full(n_states, np.nan),
+        vertex_weights=np.asarray(w_best, float) if rule == "optimized"
         else np.full(n_states, np.nan), state_dims=int(k0),
         n_simulations=len(hist["tau_s"]), n_calibration_trials=int(n_cal),
         history={key: np.asarray(v, float) for key, v in hist.items()},

@@ -286,7 +286,8 @@ def pseudoinverse_matrix(r, x, *, tau_s, scale=1.0, rcond=1e-10):
 
 
 def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin=0.2,
-                      weight_floor=1e-3, rcond=1e-10, max_iter=300, max_slsqp=600):
+                      pattern_weights=None, weight_floor=1e-3, rcond=1e-10, max_iter=300,
+                      max_slsqp=600):
     """Minimum readout-noise decoder with exact fixed points and stability margins.
 
     Minimises ``sum_mu sum_{k,j} D[k, j]^2 r_j^mu`` (the predicted readout shot-noise
@@ -323,6 +324,10 @@ def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin
         Vertex scale ``a``.
     margin : float
         Required stability margin (in units of ``1 / tau_s``), >= 0.
+    pattern_weights : array_like (P,), optional
+        Weight ``c_mu > 0`` of each pattern's readout variance in the objective,
+        ``sum_mu c_mu sum_{k,j} D[k, j]^2 r_j^mu`` (default all 1). A larger weight buys a
+        quieter readout, hence longer dwells, at that pattern at the expense of the others.
     weight_floor : float
         Neurons' noise weights ``sum_mu r_j^mu`` are floored at this fraction of their
         mean (a silent neuron would otherwise get an unbounded decoder entry for free).
@@ -367,7 +372,14 @@ def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin
     margin = check_nonnegative("margin", margin)
     weight_floor = check_positive("weight_floor", weight_floor)
 
-    w = r.sum(axis=1)
+    if pattern_weights is None:
+        c = np.ones(p)
+    else:
+        c = check_array("pattern_weights", pattern_weights, ndim=1)
+        if c.shape != (p,) or not np.all(np.isfinite(c) & (c > 0)):
+            raise InputError(f"pattern_weights: expected {p} finite numbers > 0 (one per "
+                             f"pattern), got {np.asarray(pattern_weights).tolist()!r}")
+    w = r @ c
     w = np.maximum(w, weight_floor * (w.mean() if w.mean() > 0 else 1.0))
     sw = np.sqrt(w)
     blocks = [r] + [s[:, m:m + 1] * e for m in range(p)]
