@@ -284,7 +284,7 @@ def test_nix_file_too_large_is_refused_before_neo_reads_it(tmp_path, tiny_memory
     ("states", "posterior_threshold", 0.4, r"a number in \(0.5, 1\]"),
     ("states", "latent_dims", -1, "a whole number from 0 to 64"),
     ("network", "dt", 0.01, "a number of seconds from 1e-6 to 1e-3"),
-    ("network", "rank", 2.5, r"0, a whole number up to 64, or \"full\""),
+    ("network", "rank", 2.5, r"0, a whole number up to 64, \"auto\" or \"full\""),
     ("compare", "n_surrogates", 1, "a whole number >= 2"),
     ("discreteness", "alpha", 0.7, r"a number in \(0, 0.5\]"),
 ])

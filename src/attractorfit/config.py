@@ -272,7 +272,7 @@ def check_config_for_data(cfg: dict, *, n_units: int, source: str = "configurati
         raise InputError(f"{source}: states.latent_dims = {dims}; expected fewer latent "
                          f"dimensions than the {n_units} units analysed (or 0 to choose)")
     rank = cfg["network"]["rank"]
-    if rank != "full" and rank and rank > n_units:
+    if rank not in ("full", "auto") and rank and rank > n_units:
         raise InputError(f"{source}: network.rank = {rank}; expected at most the {n_units} "
                          "units analysed (or 0 for the state model's code length)")
 
