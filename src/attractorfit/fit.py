@@ -69,6 +69,7 @@ import numpy as np
 
 from attractorfit.states._segments import _is_missing
 
+from attractorfit._threads import single_threaded
 from attractorfit._validation import check_fraction, check_int, check_positive, check_rng
 from attractorfit.binning import BinnedCounts
 from attractorfit.errors import InputError, InputWarning
@@ -1340,6 +1341,7 @@ def _check_state_fit(state_fit, n_units):
     return rates, codes.astype(np.int64)
 
 
+@single_threaded
 def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, extra_neurons=0,
                 rank="auto", tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None,
                 condition=None, train_trials=None, n_calibration_sims=None, max_evaluations=14,

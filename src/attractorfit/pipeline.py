@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from attractorfit._threads import one_thread
 from attractorfit._output import atomic_writer, write_csv, write_json
 from attractorfit.config import check_config_for_data, dumps_config, resolve_config
 from attractorfit.errors import InputError, InputWarning
@@ -156,16 +157,7 @@ class RunResult:
     unit_drift: object = None
 
 
-@contextmanager
-def _deterministic_threads():
-    """Pin BLAS/OpenMP pools to one thread so float reductions are reproducible."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - scikit-learn depends on it
-        yield
-        return
-    with threadpool_limits(limits=1):
-        yield
+_deterministic_threads = one_thread  # BLAS pools pinned to one thread (see _threads)
 
 
 def bin_for_analysis(recording, cfg: dict):
