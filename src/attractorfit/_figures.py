@@ -137,24 +137,31 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
     n_show = min(4, b.n_trials)
     show = np.linspace(0, b.n_trials - 1, n_show).round().astype(int)
     surrogate = getattr(result, "surrogate_example", None)
+    cond = result.config.get("analysis", {}).get("condition") or None
     for j, pos in enumerate(show[:2]):
         spikes = _trial_spikes(rec, b, pos)
         dur = float(b.n_valid[pos]) * b.bin_size
+        name = f"trial {int(b.trial_index[pos])}"
+        if cond and cond in b.labels:
+            name += f", {cond} {b.labels[cond][pos]}"
         if surrogate is not None:
             s_rec, s_bin, s_dec = surrogate
             spos = min(pos, s_bin.n_trials - 1)
             fig = plots.raster_compare(
                 [spikes], [_trial_spikes(s_rec, s_bin, spos)], duration=dur,
                 segments_data=[_segments_of_trial(dec, pos)],
-                segments_surrogate=[_segments_of_trial(s_dec, spos)], state_labels=labels)
+                segments_surrogate=[_segments_of_trial(s_dec, spos)], state_labels=labels,
+                trial_labels=[name])
         else:
             fig = plots.raster_with_states(spikes, duration=dur,
                                            segments=_segments_of_trial(dec, pos),
                                            state_labels=labels,
-                                           title=f"trial {int(b.trial_index[pos])}")
+                                           title=name)
         add(blocks, fig, f"raster_trial{int(b.trial_index[pos])}",
-            "Spike raster of an example trial with the decoded state as a coloured band "
-            "(unassigned time left blank).")
+            f"Spike raster of an example trial ({name}) with the decoded state as a coloured "
+            "band (unassigned time left blank)"
+            + ("; beside it a fitted-network surrogate trial of the same condition."
+               if surrogate is not None else "."))
     lat = sf.latent
     if lat.n_dims >= 1:
         verts = _state_means_in_latent(lat.trajectories, dec.bin_states, sf.n_states)
