@@ -667,6 +667,9 @@ def test_extra_neurons_hypercube_and_hebbian_options(small):
 
 
 # ------------------------------------------------------------------------- cue field
+_CUED_RECORDING = []
+
+
 @pytest.fixture(scope="module")
 def cued():
     """Our own plumbing check: a K = 2 hypercube network (as above) whose trials of item
@@ -690,6 +693,7 @@ def cued():
     f = fit_network(binned, sf, recording=rec, rng=3, tau_s_range=(0.002, 0.1),
                     n_calibration_sims=24, max_evaluations=6, depth_iterations=0,
                     cue_drive=True)
+    _CUED_RECORDING.append(rec)
     return g_true, match, binned, sf, f
 
 
@@ -749,3 +753,14 @@ def test_cue_field_round_trip_and_old_files_load(cued):
     assert h.cue_field is None and h.cue_strength == 0.0
     assert "cue_drive" not in h.summary_block()
     h.simulate_counts(n_trials=2, rng=0)
+
+
+def test_cue_field_fit_is_reproducible(cued):
+    _, _, binned, sf, f = cued
+    again = fit_network(binned, sf, recording=_CUED_RECORDING[-1], rng=3,
+                        tau_s_range=(0.002, 0.1), n_calibration_sims=24, max_evaluations=6,
+                        depth_iterations=0, cue_drive=True)
+    a, b = f.to_arrays(), again.to_arrays()
+    assert a.keys() == b.keys() and "cue_field" in a
+    for key in a:
+        np.testing.assert_array_equal(a[key], b[key], err_msg=key)

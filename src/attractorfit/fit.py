@@ -53,10 +53,12 @@ The fit, step by step (DESIGN.md, network model and Amendments 1, 2, 3, 5):
    data's; ``tau_s`` is searched again with the field on. A field moves the fixed points
    (by about ``g (1 - m) / m``, margin ``m``, as noted in step 6), so the states that
    lose their stable fixed point under each level's field are reported. Measured on the
-   demo (benchmarks/bench_cue.py): the held-out per-condition state-use TVD fell from
-   0.41 to 0.12, but g = 0.125 moved the cue state's fixed point by up to 1.5 (vertex
-   spacing 2) and removed the fixed points of most other states under the field, and the
-   rate, Fano factor and ISI statistics got worse, so the option is off by default.
+   demo: the held-out per-condition state-use TVD fell from 0.41 to 0.12, but
+   g = 0.125 moved the cue state's fixed point by up to 1.5 (vertex spacing 2) and
+   removed the fixed points of most other states under the field, and the rate, Fano
+   factor and ISI statistics got worse, so the option is off by default (figures from
+   ``attractorfit demo`` with the option on and off; benchmarks/bench_cue.py prints the
+   same comparison).
 
 References
 ----------
