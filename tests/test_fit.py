@@ -2,6 +2,7 @@
 
 import io
 import itertools
+import json
 
 import numpy as np
 import pytest
@@ -14,6 +15,7 @@ from attractorfit.errors import InputError, InputWarning
 from attractorfit.fit import (
     NetworkFit,
     _allocate_starts,
+    _level_table,
     _bin_trials,
     _pooled_cv,
     centred_rate_r2,
@@ -665,3 +667,103 @@ def test_extra_neurons_hypercube_and_hebbian_options(small):
     assert blk["hypercube_encoder"] is True
     json.dumps(blk)                                           # plain values only
     assert np.all(np.isnan(f.requested_margins))
+
+
+# ------------------------------------------------------------------------- cue field
+_CUED_RECORDING = []
+
+
+@pytest.fixture(scope="module")
+def cued():
+    """Our own plumbing check: a K = 2 hypercube network (as above) whose trials of item
+    l receive a known constant latent input G_TRUE * x^l for the whole trial, simulated,
+    binned and its states fitted (the truth: each item holds its vertex ~80% of the
+    time, against ~40% without the field)."""
+    n, k, noise, tau, g_true = 96, 2, 0.3, 0.005, 0.03
+    enc = hypercube_encoder(n, k, gain=0.4, rng=0)
+    codes = vertex_codes(k)
+    vp = vertex_patterns(enc, codes, bias=0.9, noise=noise)
+    dec = decoder_pseudoinverse(vp.rates, codes.T, tau_s=tau, encoder=enc, slopes=vp.slopes)
+    true = LowRankNetwork(enc, dec.decoder, bias=0.9, noise=noise, tau_s=tau)
+    item = np.arange(48) % 4
+    drive = np.repeat((g_true * codes[item])[:, None, :], 25000, axis=1)
+    res = true.simulate(2.5, n_trials=48, seed=2, y0=codes[item].astype(float), drive=drive)
+    rec = res.to_recording(labels={"item": item}, gap=0.5)
+    binned = bin_spikes(rec, bin_size=0.02)
+    sf = analyse_states(binned, n_states=4, latent_dims=2, n_restarts=2, rng=0)
+    corr = np.corrcoef(sf.rates_hz, vp.rates.T)[:4, 4:]
+    match = np.argmax(corr, axis=1)           # fitted state -> true vertex
+    f = fit_network(binned, sf, recording=rec, rng=3, tau_s_range=(0.002, 0.1),
+                    n_calibration_sims=24, max_evaluations=6, depth_iterations=0,
+                    cue_drive=True)
+    _CUED_RECORDING.append(rec)
+    return g_true, match, binned, sf, f
+
+
+def _cue_use(f, sf, counts):
+    tab = _level_table(sf.decode(counts), counts.n_valid,
+                       f._level_rows(counts.labels, counts.n_trials), len(f.levels),
+                       f.n_states)
+    return float(np.mean(tab[np.arange(len(f.levels)), f.cue_states]))
+
+
+def test_cue_field_recovered_from_a_network_with_a_known_field(cued):
+    g_true, match, binned, sf, f = cued
+    assert f.levels == ["0", "1", "2", "3"]
+    # each item's cue state is the fitted state of the item's true vertex
+    assert [int(match[s]) for s in f.cue_states] == [0, 1, 2, 3]
+    # the field points along the cue state's code, with a positive strength of the
+    # right order of magnitude (the refitted network's vertices need not be as deep as
+    # the true network's, so only the order is checked)
+    assert g_true / 5 < f.cue_strength < 5 * g_true
+    np.testing.assert_allclose(f.cue_field[:4], f.cue_strength * f.codes[f.cue_states])
+    np.testing.assert_array_equal(f.cue_field[4], 0.0)
+    assert abs(f.cue_model_use - f.cue_target_use) <= 0.05
+    assert f.cue_unstable.shape == (4, 4)
+    block = f.summary_block()["cue_drive"]
+    assert block["strength"] == f.cue_strength
+
+
+def test_cue_field_raises_the_use_of_the_cue_state(cued):
+    _, _, binned, sf, f = cued
+    with_field = _cue_use(f, sf, f.simulate_counts(rng=7))
+    off = NetworkFit(**{**f.__dict__, "cue_field": np.zeros_like(f.cue_field)})
+    without = _cue_use(f, sf, off.simulate_counts(rng=7))
+    data = _cue_use(f, sf, binned)
+    assert with_field > without + 0.15
+    assert abs(with_field - data) < 0.1
+
+
+def test_cue_field_round_trip_and_old_files_load(cued):
+    f = cued[-1]
+    d = f.to_arrays()
+    buf = io.BytesIO()
+    np.savez(buf, **d)
+    buf.seek(0)
+    g = NetworkFit.from_arrays(np.load(buf, allow_pickle=False))
+    np.testing.assert_array_equal(g.cue_field, f.cue_field)
+    np.testing.assert_array_equal(g.cue_unstable, f.cue_unstable)
+    assert g.cue_strength == f.cue_strength
+    assert (json.dumps(g.summary_block(), sort_keys=True)       # NaN != NaN in dicts
+            == json.dumps(f.summary_block(), sort_keys=True))
+    for x, y in zip(g.simulate_recording(rng=4).spike_times,
+                    f.simulate_recording(rng=4).spike_times):
+        np.testing.assert_array_equal(x, y)
+    # a model.npz written before the cue field existed: no cue keys, loads with no field
+    old = {key: v for key, v in d.items() if not key.startswith("cue_")
+           and key != "condition_tvd"}
+    h = NetworkFit.from_arrays(old)
+    assert h.cue_field is None and h.cue_strength == 0.0
+    assert "cue_drive" not in h.summary_block()
+    h.simulate_counts(n_trials=2, rng=0)
+
+
+def test_cue_field_fit_is_reproducible(cued):
+    _, _, binned, sf, f = cued
+    again = fit_network(binned, sf, recording=_CUED_RECORDING[-1], rng=3,
+                        tau_s_range=(0.002, 0.1), n_calibration_sims=24, max_evaluations=6,
+                        depth_iterations=0, cue_drive=True)
+    a, b = f.to_arrays(), again.to_arrays()
+    assert a.keys() == b.keys() and "cue_field" in a
+    for key in a:
+        np.testing.assert_array_equal(a[key], b[key], err_msg=key)

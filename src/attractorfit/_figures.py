@@ -92,6 +92,18 @@ def methods_text(result) -> str:
     nf = getattr(result, "network_fit", None)
     if nf is not None and hasattr(nf, "methods_text"):
         parts.append(nf.methods_text())
+    if nf is not None and getattr(nf, "cue_field", None) is not None:
+        lost = int(np.asarray(nf.cue_unstable, bool).sum())
+        parts.append(
+            f"Each trial of level l of '{nf.condition}' received a constant latent input "
+            f"(cue field) g x_l for its whole length, x_l the vertex code of the state that "
+            f"level's training trials occupy most; the one strength g = {nf.cue_strength:.3g} "
+            "was calibrated by simulating the training trials (same random numbers at every "
+            "step) so that the fraction of delay time in that state, averaged over levels, "
+            f"matched the data's ({nf.cue_model_use:.3f} against {nf.cue_target_use:.3f}), "
+            "and tau_s was searched again with the field on. The field moves the network's "
+            f"fixed points: under it {lost} of {np.asarray(nf.cue_unstable).size} "
+            "(level, state) pairs had no stable fixed point near the state's vertex.")
     cmp_ = getattr(result, "comparison", None)
     if cmp_ is not None and hasattr(cmp_, "methods_text"):
         parts.append(cmp_.methods_text())
@@ -354,6 +366,10 @@ def _model_sections(result, labels, add):
         assumptions={"compared trials": where, "surrogates": str(c.n_surrogates),
                      "decoder rule": nf.rule, "tau_s": f"{nf.tau_s * 1e3:.0f} ms",
                      "membrane noise": f"{nf.noise:.3g}",
+                     "cue field": (f"strength {nf.cue_strength:.3g} along each level's "
+                                   "most used state" if getattr(nf, "cue_field", None)
+                                   is not None else "none (only the first state depends "
+                                   "on the condition)"),
                      "states decoded with": "the data's fitted Poisson HMM"}))
     for name, r in c.nulls.items():
         verdicts.append(Verdict(f"Network vs {name} null", r.verdict, r.p_network_better,

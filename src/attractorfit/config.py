@@ -173,6 +173,15 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "dt": Param(1e-4, "simulation step, seconds (the transfer function is evaluated at "
                           "this step)", _num(1e-6, 1e-3), "a number of seconds from 1e-6 "
                                                               "to 1e-3"),
+        "cue_drive": Param(False, "hold a constant latent input (cue field) along the "
+                                  "code of each condition level's most used state through "
+                                  "that level's trials, its one strength calibrated so that "
+                                  "the model's per-level state use matches the data's (needs "
+                                  "a condition column; false: the first state alone carries "
+                                  "the cue). Off by default: on the demo it matched state use "
+                                  "per level but moved the fixed points and worsened the rate, "
+                                  "Fano factor and ISI statistics",
+                           lambda v: isinstance(v, bool), "true or false"),
     },
     "compare": {
         "n_surrogates": Param(20, "surrogate recordings simulated from the fitted network",

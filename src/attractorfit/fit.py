@@ -45,6 +45,20 @@ The fit, step by step (DESIGN.md, network model and Amendments 1, 2, 3, 5):
 7. *Trial structure.* Surrogate trials have the data's analysis-window lengths and
    labels, and each starts at the vertex of a state drawn (stratified) from the
    distribution of the first state of the data's trials of the same condition.
+8. *Cue field* (optional, ``cue_drive=True``). Nothing in steps 1-7 holds a trial to its
+   condition after the first state, so an excursion forgets the cue. With the option,
+   every trial of level ``l`` receives a constant latent input ``g x^{c_l}`` (``c_l`` the
+   state the level's training trials occupy most) and the one strength ``g`` is
+   calibrated by simulation so that the mean per-level use of the cue state matches the
+   data's; ``tau_s`` is searched again with the field on. A field moves the fixed points
+   (by about ``g (1 - m) / m``, margin ``m``, as noted in step 6), so the states that
+   lose their stable fixed point under each level's field are reported. Measured on the
+   demo: the held-out per-condition state-use TVD fell from 0.41 to 0.12, but
+   g = 0.125 moved the cue state's fixed point by up to 1.5 (vertex spacing 2) and
+   removed the fixed points of most other states under the field, and the rate, Fano
+   factor and ISI statistics got worse, so the option is off by default (figures from
+   ``attractorfit demo`` with the option on and off; benchmarks/bench_cue.py prints the
+   same comparison).
 
 References
 ----------
@@ -133,6 +147,14 @@ WEIGHT_RANGE = (0.05, 20.0)
 OCC_EPS = 0.01
 #: Silent time (s) between consecutive surrogate trials.
 TRIAL_GAP_S = 0.5
+#: Cue field (``cue_drive=True``): range of the strength ``g`` (latent units; the field of
+#: level l is ``g x^pref(l)``), the first strength tried, the tolerance on the mean use of
+#: the cue state (fraction of delay time, averaged over levels) and the calibration
+#: simulations allowed for the field (strength and, with the field on, tau_s again).
+CUE_RANGE = (0.0, 1.0)
+CUE_START = 0.05
+CUE_TOL = 0.02
+CUE_EVALUATIONS = 14
 
 
 # ============================================================================ ISI CV of LIF
@@ -704,18 +726,28 @@ def _whole_steps(duration, dt):
     return max(n, 1)
 
 
-def _simulate(network, durations, y0, dt, seed, n_keep):
+def _simulate(network, durations, y0, dt, seed, n_keep, drive=None):
     """Simulate trials of the given durations (grouped by length); spikes of the first
-    ``n_keep`` neurons per trial. Same seed -> same spikes."""
+    ``n_keep`` neurons per trial. ``drive``: optional constant latent input per trial
+    (n_trials, K), held for the whole trial; None (or all zero) for none. Same seed ->
+    same spikes."""
     durations = np.asarray(durations, float)
     steps = np.array([_whole_steps(d, dt) for d in durations])
     groups = np.unique(steps)
     seeds = np.random.SeedSequence(seed).spawn(len(groups))
     out = [None] * len(durations)
+    if drive is not None and not np.any(np.asarray(drive, float)):
+        drive = None
     for g, ss in zip(groups, seeds):
         idx = np.flatnonzero(steps == g)
+        drv = None
+        if drive is not None:
+            def drv(t, trial, idx=idx):
+                return np.broadcast_to(np.asarray(drive, float)[idx[trial]],
+                                       (t.size, network.rank))
         res = network.simulate(g * dt, dt=dt, n_trials=idx.size, seed=np.random.default_rng(ss),
-                               y0=y0[idx], record_every=max(1, int(round(0.01 / dt))))
+                               y0=y0[idx], drive=drv,
+                               record_every=max(1, int(round(0.01 / dt))))
         for j, trial in zip(idx, res.trials):
             out[j] = trial[:n_keep]
     return out, steps * dt
@@ -739,6 +771,46 @@ def _bin_trials(spikes, n_valid, bin_size, unit_ids, labels):
                         unit_ids=list(unit_ids), unit_index=np.arange(n_units),
                         trial_index=np.arange(n_tr), window_start=np.zeros(n_tr),
                         labels=dict(labels or {}))
+
+
+def _level_table(decoding, n_valid, rows, n_levels, n_states):
+    """Per level: fractions of the valid bins in each state (columns 0..S-1) and
+    unassigned (column S), as the comparison's condition tables. Rows of levels without
+    trials are NaN; trials with row ``n_levels`` (no known level) are left out."""
+    bs = np.asarray(decoding.bin_states)
+    table = np.zeros((n_levels, n_states + 1))
+    for i in range(bs.shape[0]):
+        r = int(rows[i])
+        if r >= n_levels:
+            continue
+        st = bs[i, :int(n_valid[i])]
+        table[r] += np.bincount(np.where(st < 0, n_states, st), minlength=n_states + 1)
+    tot = table.sum(axis=1, keepdims=True)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return table / tot
+
+
+def _cue_unstable(net, codes, fields, dt, rng):
+    """(L, S) bool: under level l's constant field, state s has no stable fixed point
+    of the rate picture whose nearest vertex is its own (the field has pushed it away
+    or merged it into another basin); and (L, S) distance of the nearest such stable
+    fixed point from the vertex (NaN when there is none)."""
+    codes = np.asarray(codes)
+    grid = {1: 9, 2: 5, 3: 3}.get(net.rank, 0)
+    lost = np.zeros((len(fields), codes.shape[0]), dtype=bool)
+    shift = np.full(lost.shape, np.nan)
+    for lv, h in enumerate(fields):
+        moved = LowRankNetwork(net.encoder, net.decoder, bias=net.bias + net.encoder @ h,
+                               threshold=net.threshold, reset=net.reset, tau_m=net.tau_m,
+                               tau_s=net.tau_s, refractory=net.refractory, noise=net.noise)
+        fp = fixed_points(moved, codes=codes.astype(float), dt=dt, grid=grid,
+                          n_random=0 if net.rank <= 3 else 32, rng=rng)
+        for s, c in enumerate(codes):
+            hit = np.flatnonzero(fp.stable & np.all(fp.codes == c, axis=1))
+            lost[lv, s] = hit.size == 0
+            if hit.size:
+                shift[lv, s] = float(np.min(np.linalg.norm(fp.points[hit] - c, axis=1)))
+    return lost, shift
 
 
 def _tvd(p, q) -> float:
@@ -844,6 +916,28 @@ class NetworkFit:
         Optimized rule: weight of each vertex's readout variance in the decoder's
         objective after the occupancy rounds (geometric mean 1; NaN or None for the
         other rules).
+    cue_field : ndarray (L + 1, K) or None
+        Cue field (``cue_drive=True``): the constant latent input ``h_l`` held through
+        every trial of level ``l`` (it enters the neurons' input as ``E (y + h_l)``);
+        ``h_l = cue_strength * x^{cue_states[l]}``; last row (trials of no known level)
+        zero. None or all zero: no field.
+    cue_strength : float
+        The calibrated strength ``g`` (latent units, vertex scale 1); 0 without a field.
+    cue_states : ndarray (L,) of int or None
+        Cue state of each level: the state the data's training trials of that level
+        occupy most.
+    cue_target_use, cue_model_use : float
+        Fraction of delay time in the cue state, averaged over levels: data (training
+        trials) and the chosen calibration evaluation (NaN when not measured).
+    condition_tvd : float
+        Mean over levels of the TVD between the data's and the chosen calibration
+        evaluation's per-level state (and unassigned) fractions (NaN when not measured).
+    cue_unstable : ndarray (L, S) bool or None
+        Under level l's field, state s has no stable fixed point of the rate picture
+        nearest its own vertex.
+    cue_shift : ndarray (L, S) or None
+        Distance from state s's vertex of its stable fixed point under level l's field
+        (NaN when there is none).
     """
 
     network: LowRankNetwork
@@ -892,6 +986,14 @@ class NetworkFit:
     train_trials: np.ndarray | None = None
     notes: list = field(default_factory=list)
     vertex_weights: np.ndarray | None = None
+    cue_field: np.ndarray | None = None
+    cue_strength: float = 0.0
+    cue_states: np.ndarray | None = None
+    cue_target_use: float = float("nan")
+    cue_model_use: float = float("nan")
+    condition_tvd: float = float("nan")
+    cue_unstable: np.ndarray | None = None
+    cue_shift: np.ndarray | None = None
 
     def _weights(self) -> np.ndarray:
         if self.vertex_weights is None:
@@ -990,8 +1092,9 @@ class NetworkFit:
         rows = self._level_rows(labels, n_trials)
         first = _allocate_starts(rows, self.start_probs, seed_starts)
         y0 = self.codes[first].astype(float)
+        drive = None if self.cue_field is None else np.asarray(self.cue_field, float)[rows]
         spikes, _ = _simulate(self.network, durations, y0, self.dt,
-                              int(seed_sim.integers(2 ** 63)), self.n_units)
+                              int(seed_sim.integers(2 ** 63)), self.n_units, drive=drive)
         return spikes, durations, labels
 
     def simulate_recording(self, *, n_trials=None, labels=None, durations=None, rng=None,
@@ -1005,7 +1108,7 @@ class NetworkFit:
             With ``n_trials`` only, durations and labels cycle through the data's.
         labels : dict of str to sequence, optional
             Trial label columns; the fit's condition column (if present) sets each
-            trial's first state.
+            trial's first state and, with a cue field, the field held through it.
         durations : float or sequence of float, optional
             Length of each trial (s); the simulation runs whole steps of ``dt``
             (rounded up), so binning reproduces ``floor(duration / bin_size)`` bins.
@@ -1105,6 +1208,27 @@ class NetworkFit:
             "history": {k: [float(x) for x in v] for k, v in self.history.items()},
             "held_out": self.train_trials is not None,
             "notes": list(self.notes),
+            **({} if self.cue_field is None else {"cue_drive": self._cue_block()}),
+        }
+
+    def _cue_block(self):
+        if self.cue_field is None:
+            return None
+        lost = np.asarray(self.cue_unstable, bool) if self.cue_unstable is not None \
+            else np.zeros((len(self.levels), self.n_states), bool)
+        text = self.vertex_text
+        return {
+            "strength": float(self.cue_strength),
+            "cue_states": {lv: int(s) for lv, s in zip(self.levels, self.cue_states)},
+            "target_cue_use": float(self.cue_target_use),
+            "model_cue_use": float(self.cue_model_use),
+            "calibration_condition_tvd": float(self.condition_tvd),
+            "states_without_fixed_point": {
+                lv: [f"{s} ({text[s]})" for s in np.flatnonzero(row)]
+                for lv, row in zip(self.levels, lost)},
+            "largest_fixed_point_shift": float(np.nanmax(self.cue_shift))
+            if self.cue_shift is not None and np.any(np.isfinite(self.cue_shift))
+            else float("nan"),
         }
 
     # ---------------------------------------------------------- persistence
@@ -1155,6 +1279,19 @@ class NetworkFit:
             "notes": np.asarray(self.notes, dtype=str).reshape(-1),
             "vertex_weights": self._weights(),
         }
+        if self.cue_field is not None:
+            n_lev = len(self.levels)
+            out.update({
+                "cue_field": np.asarray(self.cue_field, float).reshape(n_lev + 1, self.rank),
+                "cue_strength": np.float64(self.cue_strength),
+                "cue_states": np.asarray(self.cue_states, np.int64).reshape(n_lev),
+                "cue_target_use": np.float64(self.cue_target_use),
+                "cue_model_use": np.float64(self.cue_model_use),
+                "condition_tvd": np.float64(self.condition_tvd),
+                "cue_unstable": np.asarray(self.cue_unstable, bool).reshape(n_lev,
+                                                                             self.n_states),
+                "cue_shift": np.asarray(self.cue_shift, float).reshape(n_lev, self.n_states),
+            })
         for key, values in self.history.items():
             out[f"history__{key}"] = np.asarray(values, float)
         for i, (name, values) in enumerate(self.trial_labels.items()):
@@ -1213,7 +1350,17 @@ class NetworkFit:
             if bool(get("has_train_trials")) else None,
             notes=[str(x) for x in get("notes")],
             vertex_weights=(np.asarray(d["vertex_weights"], float) if "vertex_weights" in d
-                            else None))
+                            else None),
+            # files written before the cue field have none of these keys: no field
+            **({} if "cue_field" not in d else dict(
+                cue_field=get("cue_field").astype(float),
+                cue_strength=float(get("cue_strength")),
+                cue_states=get("cue_states").astype(np.int64),
+                cue_target_use=float(get("cue_target_use")),
+                cue_model_use=float(get("cue_model_use")),
+                condition_tvd=float(get("condition_tvd")),
+                cue_unstable=get("cue_unstable").astype(bool),
+                cue_shift=get("cue_shift").astype(float))))
 
 
 def _plain_column(values) -> np.ndarray:
@@ -1346,6 +1493,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 rank="auto", tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None,
                 condition=None, train_trials=None, n_calibration_sims=None, max_evaluations=14,
                 dwell_tol=0.05, margin=0.05, depth_iterations=3, occupancy_tol=0.03,
+                cue_drive=False, cue_evaluations=CUE_EVALUATIONS,
                 rng=None, progress=False) -> NetworkFit:
     """Fit a low-rank LIF network whose attractors sit at the data's states.
 
@@ -1413,6 +1561,24 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         docstring.)
     occupancy_tol : float
         Occupancy rounds stop once the calibration occupancy TVD is at most this.
+    cue_drive : bool
+        Fit a cue field (needs a condition column): every trial of level ``l`` receives
+        the constant latent input ``h_l = g x^{c_l}`` for its whole length, where
+        ``c_l`` is the state the training trials of level ``l`` occupy most (the cue
+        state) and ``g`` one strength for the fit. Without it nothing condition-specific
+        persists after the first state, so an excursion forgets the cue. ``g`` is
+        calibrated after the occupancy rounds on the larger calibration set (same random
+        numbers at every step): from ``g = 0``, doubling from ``CUE_START`` to bracket,
+        then regula falsi safeguarded by bisection, so that the fraction of delay time
+        in the cue state, averaged over levels, matches the data's within ``CUE_TOL``;
+        ``tau_s`` is then searched again with the field on (the field lengthens dwells).
+        The evaluation kept is the one of least dwell loss + occupancy TVD + condition
+        TVD among those of this stage within the dwell tolerance. A field moves the
+        fixed points (by about ``g (1 - m) / m`` with margin ``m``): every level's
+        field is checked for states left without a stable fixed point near their
+        vertex, reported in ``cue_unstable`` and the notes.
+    cue_evaluations : int
+        Calibration simulations allowed for the cue field (beyond ``max_evaluations``).
     rng : None, int or numpy.random.Generator
         Randomness (calibration noise, first-state allocation, fixed-point search).
     progress : bool
@@ -1462,6 +1628,9 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         raise InputError(f"tau_s_range: low end {lo_tau!r} s is below two steps of dt = "
                          f"{dt!r} s")
     max_evaluations = check_int("max_evaluations", max_evaluations, low=1)
+    cue_evaluations = check_int("cue_evaluations", cue_evaluations, low=1)
+    if not isinstance(cue_drive, (bool, np.bool_)):
+        raise InputError(f"cue_drive: expected true or false, got {cue_drive!r}")
     dwell_tol = check_positive("dwell_tol", dwell_tol)
     depth_iterations = check_int("depth_iterations", depth_iterations, low=0)
     occupancy_tol = check_fraction("occupancy_tol", occupancy_tol)
@@ -1622,7 +1791,8 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         n_valid = binned.n_valid[pick]
         return {"n_valid": n_valid, "durations": n_valid * binned.bin_size,
                 "labels": {key: np.asarray(v)[pick] for key, v in binned.labels.items()},
-                "y0": codes[first_state].astype(float), "seed": seed, "n": int(n_cal)}
+                "y0": codes[first_state].astype(float), "seed": seed, "n": int(n_cal),
+                "rows": level_of[pick]}
 
     if n_calibration_sims is None:
         n_cal = max(20, int(math.ceil(CALIBRATION_SECONDS / mean_len)))
@@ -1635,17 +1805,45 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
 
     hist = {"tau_s": [], "mean_dwell_s": [], "occupancy_tvd": [], "dwell_loss": [],
             "loss": [], "round": [], "n_trials": []}
+    n_lev = len(levels)
+    cue_on = bool(cue_drive) and cond is not None and n_lev >= 1
+    if cue_drive and not cue_on:
+        notes.append("cue_drive: the trials have no condition column; no cue field was "
+                     "fitted.")
+    if cue_on:
+        # the data's per-level state use (training trials) and each level's cue state
+        table_data = _level_table(decoding, train_binned.n_valid, level_of[train], n_lev,
+                                  n_states)
+        lev_ok = np.all(np.isfinite(table_data), axis=1)
+        cue_states = np.where(lev_ok, np.argmax(np.nan_to_num(table_data[:, :n_states]),
+                                                axis=1), y0_state[:n_lev]).astype(np.int64)
+        target_use = float(np.mean(table_data[lev_ok, cue_states[lev_ok]]))
+        unit_fields = np.zeros((n_lev + 1, k))
+        unit_fields[:n_lev] = codes[cue_states]
+        hist.update({"cue_strength": [], "cue_use": [], "condition_tvd": []})
+    limit = [max_evaluations]
     occs, decoders, wlist = [], [], []
     bar = None
     if progress:
         from tqdm import tqdm
         bar = tqdm(total=max_evaluations, desc="fit tau_s", leave=False)
 
-    def record(tau, dec, round_, cal):
+    def record(tau, dec, round_, cal, cue=0.0):
         net = build(tau, dec)
-        spikes, _ = _simulate(net, cal["durations"], cal["y0"], dt, cal["seed"], n_units)
+        drive = cue * unit_fields[cal["rows"]] if cue_on and cue > 0 else None
+        spikes, _ = _simulate(net, cal["durations"], cal["y0"], dt, cal["seed"], n_units,
+                              drive=drive)
         sim = _bin_trials(spikes, cal["n_valid"], binned.bin_size, unit_ids, cal["labels"])
         decoded = state_fit.decode(sim)
+        if cue_on:
+            tab = _level_table(decoded, cal["n_valid"], cal["rows"], n_lev, n_states)
+            both = lev_ok & np.all(np.isfinite(tab), axis=1)
+            hist["cue_strength"].append(cue)
+            hist["cue_use"].append(float(np.mean(tab[both, cue_states[both]]))
+                                   if both.any() else float("nan"))
+            hist["condition_tvd"].append(float(np.mean(0.5 * np.sum(
+                np.abs(tab[both] - table_data[both]), axis=1))) if both.any()
+                else float("nan"))
         dwell = _pooled_dwell(decoded)
         occ = np.nan_to_num(np.asarray(decoded.occupancy, float))
         f = math.log(dwell / target_dwell) if np.isfinite(dwell) and dwell > 0 else -10.0
@@ -1666,7 +1864,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     tol = math.log1p(dwell_tol)
     bounds = (math.log(lo_tau), math.log(hi_tau))
 
-    def search(x0, dec, round_, cal, f0=None):
+    def search(x0, dec, round_, cal, f0=None, cue=0.0):
         """Bracketing secant search on log tau_s for the mean dwell time (one round).
 
         ``f0``: log dwell ratio already measured at ``x0`` (its evaluation is the last
@@ -1674,7 +1872,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         first_eval = len(hist["tau_s"]) - (f0 is not None)
         a, b = bounds
         if f0 is None:
-            f0 = record(math.exp(x0), dec, round_, cal)
+            f0 = record(math.exp(x0), dec, round_, cal, cue)
         xa = xb = fa = fb = None
         if f0 < 0:
             xa, fa = x0, f0
@@ -1682,13 +1880,13 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
             xb, fb = x0, f0
         slope = 1.2           # d log(dwell) / d log(tau_s), updated from the data
         grow = 1.0            # step multiplier, doubled while the dwell does not respond
-        while (abs(f0) > tol and len(hist["tau_s"]) < max_evaluations
+        while (abs(f0) > tol and len(hist["tau_s"]) < limit[0]
                and (xa is None or xb is None)):
             if xa is None:        # dwells too long: shorter tau_s
                 if xb <= a + 1e-9:
                     break
                 x1 = max(a, xb - grow * min(max(fb / slope, 0.15), 1.5))
-                f1 = record(math.exp(x1), dec, round_, cal)
+                f1 = record(math.exp(x1), dec, round_, cal, cue)
                 if f1 < 0:
                     xa, fa = x1, f1
                 else:
@@ -1701,7 +1899,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 if xa >= b - 1e-9:
                     break
                 x1 = min(b, xa + grow * min(max(-fa / slope, 0.15), 1.5))
-                f1 = record(math.exp(x1), dec, round_, cal)
+                f1 = record(math.exp(x1), dec, round_, cal, cue)
                 if f1 >= 0:
                     xb, fb = x1, f1
                 else:
@@ -1714,12 +1912,12 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         side = 0
         while (xa is not None and xb is not None
                and min(hist["dwell_loss"][first_eval:]) > tol
-               and len(hist["tau_s"]) < max_evaluations and xb - xa > 1e-3):
+               and len(hist["tau_s"]) < limit[0] and xb - xa > 1e-3):
             # Illinois-modified regula falsi, safeguarded by bisection
             x1 = xb - fb * (xb - xa) / (fb - fa) if fb != fa else 0.5 * (xa + xb)
             if not (xa + 0.05 * (xb - xa) <= x1 <= xb - 0.05 * (xb - xa)):
                 x1 = 0.5 * (xa + xb)
-            f1 = record(math.exp(x1), dec, round_, cal)
+            f1 = record(math.exp(x1), dec, round_, cal, cue)
             if f1 < 0:
                 xa, fa = x1, f1
                 if side == -1:
@@ -1774,21 +1972,108 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 break
             dec_r = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=tau_ref,
                                 margin=depth, weights=weights)
+    def pick(first_eval, score, strict=False):
+        ok = np.asarray(hist["dwell_loss"]) <= tol
+        late = np.arange(len(hist["tau_s"])) >= first_eval
+        pool = np.flatnonzero(ok & late)
+        if pool.size == 0 and strict:
+            pool = np.flatnonzero(late)
+        if pool.size == 0:
+            pool = np.flatnonzero(ok) if ok.any() else np.arange(len(hist["tau_s"]))
+        return int(pool[np.argmin(np.asarray(score)[pool])])
+
+    stage3 = len(hist["tau_s"])
+    if cue_on:
+        # stage 3: the cue field's strength g, on the larger calibration set, from the
+        # evaluation of least loss so far (same random numbers at every step); then tau_s
+        # again with the field on, and g once more if the budget allows
+        start = pick(stage2, hist["loss"])
+        weights = wlist[start].copy()
+        dec_c, x = decoders[start], math.log(hist["tau_s"][start])
+        limit[0] = stage3 + cue_evaluations
+        g_best, slope = 0.0, None
+        known = None        # (g, use gap) already measured at the current tau_s
+        for _sweep in range(3):
+            if len(hist["tau_s"]) >= limit[0]:
+                break
+            here = len(hist["tau_s"])
+
+            def use_gap(g):
+                record(math.exp(x), dec_c, -1, cal_large, g)
+                return hist["cue_use"][-1] - target_use
+
+            if known is None:
+                lo, f_lo = 0.0, use_gap(0.0)
+                g = CUE_START
+            else:
+                lo, f_lo = known
+                g = lo + 2.0 * CUE_START if slope is None else lo - f_lo / slope
+            hi = f_hi = None
+            if f_lo >= 0 and known is not None:     # start above the target: bracket down
+                hi, f_hi, lo, f_lo = lo, f_lo, 0.0, None
+                g = max(hi - f_hi / slope, 0.25 * hi) if slope else 0.5 * hi
+                f = use_gap(g)
+                if f >= 0:
+                    hi, f_hi, lo = g, f, 0.0
+                    f_lo = use_gap(0.0) if len(hist["tau_s"]) < limit[0] else -1.0
+                else:
+                    lo, f_lo = g, f
+            g = min(max(g, lo + 1e-3), CUE_RANGE[1])
+            while f_lo < -CUE_TOL and hi is None and len(hist["tau_s"]) < limit[0]:
+                f = use_gap(g)
+                if f >= 0 or not np.isfinite(f):
+                    hi, f_hi = g, (f if np.isfinite(f) else 1.0)
+                else:
+                    lo, f_lo = g, f
+                    if g >= CUE_RANGE[1]:
+                        break
+                    g = min(2.0 * g, CUE_RANGE[1])
+            while (hi is not None and min(abs(f_lo), abs(f_hi)) > CUE_TOL
+                   and len(hist["tau_s"]) < limit[0] and hi - lo > 1e-3):
+                g = lo + (hi - lo) * (-f_lo) / (f_hi - f_lo)
+                if not (lo + 0.1 * (hi - lo) <= g <= hi - 0.1 * (hi - lo)):
+                    g = 0.5 * (lo + hi)
+                f = use_gap(g)
+                if f >= 0:
+                    hi, f_hi = g, f
+                else:
+                    lo, f_lo = g, f
+            if hi is not None and hi > lo and f_hi > f_lo:
+                slope = (f_hi - f_lo) / (hi - lo)
+            idx = np.arange(here, len(hist["tau_s"]))
+            gap = np.abs(np.asarray(hist["cue_use"])[idx] - target_use)
+            j = int(idx[np.argmin(np.nan_to_num(gap, nan=np.inf))])
+            g_best = float(hist["cue_strength"][j])
+            if hist["dwell_loss"][j] <= tol or len(hist["tau_s"]) >= limit[0]:
+                break
+            if j == len(hist["tau_s"]) - 1:
+                md = hist["mean_dwell_s"][j]
+                fj = math.log(md / target_dwell) if np.isfinite(md) and md > 0 else -10.0
+            else:      # search() takes f0 from the last evaluation recorded
+                fj = record(math.exp(x), dec_c, -1, cal_large, g_best)
+            j = search(x, dec_c, -1, cal_large, f0=fj, cue=g_best)
+            x = math.log(hist["tau_s"][j])
+            known = (g_best, hist["cue_use"][j] - target_use)
+            if abs(known[1]) <= CUE_TOL:
+                break
     if bar is not None:
         bar.close()
     dwell_ok = np.asarray(hist["dwell_loss"]) <= tol
-    # prefer the evaluations on the larger set (stage 2) when one meets the dwell target
-    late = np.arange(len(hist["tau_s"])) >= stage2
-    pool = np.flatnonzero(dwell_ok & late)
-    if pool.size == 0:
-        pool = np.flatnonzero(dwell_ok) if dwell_ok.any() else np.arange(len(hist["tau_s"]))
-    best = int(pool[np.argmin(np.asarray(hist["loss"])[pool])])
+    if cue_on and len(hist["tau_s"]) > stage3:
+        # the cue stage's evaluations, scored by dwell + occupancy + condition tables
+        # (all of them: a field is kept even when the dwell target was missed with it)
+        best = pick(stage3, np.asarray(hist["loss"])
+                    + np.nan_to_num(np.asarray(hist["condition_tvd"]), nan=1.0), strict=True)
+    else:
+        # prefer the evaluations on the larger set (stage 2) when one meets the dwell target
+        best = pick(stage2, hist["loss"])
     tau = float(hist["tau_s"][best])
     dec = decoders[best]
     w_best = wlist[best]
     reached = bool(dwell_ok[best])
     if not reached:
-        best = int(np.argmin(hist["dwell_loss"]))
+        first = stage3 if cue_on and len(hist["tau_s"]) > stage3 else 0
+        best = first + int(np.argmin(hist["dwell_loss"][first:]))
         tau = float(hist["tau_s"][best])
         dec = decoders[best]
         w_best = wlist[best]
@@ -1825,6 +2110,24 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     if dec.residual > 1e-6:
         notes.append(f"The fixed-point system is solved only in the least-squares sense "
                      f"(relative residual {dec.residual:.3g}).")
+    cue_kw = {}
+    if cue_on:
+        g_fit = float(hist["cue_strength"][best])
+        field_ = g_fit * unit_fields
+        lost, shift = _cue_unstable(net, codes, field_[:n_lev], dt,
+                                    np.random.default_rng(seed_fp))
+        cue_kw = dict(cue_field=field_, cue_strength=g_fit, cue_states=cue_states,
+                      cue_target_use=target_use, cue_model_use=float(hist["cue_use"][best]),
+                      condition_tvd=float(hist["condition_tvd"][best]), cue_unstable=lost,
+                      cue_shift=shift)
+        if g_fit > 0 and lost.any():
+            text = ["".join("H" if c > 0 else "L" for c in row) for row in codes]
+            parts = [f"{lv}: " + ", ".join(f"{s_} ({text[s_]})" for s_ in np.flatnonzero(row))
+                     for lv, row in zip(levels, lost) if row.any()]
+            notes.append(f"Under the cue field (strength {g_fit:.3g}) some states have no "
+                         "stable fixed point near their vertex in the rate picture while "
+                         "the field is on (" + "; ".join(parts) + "): during those trials "
+                         "the network visits them only as transients.")
 
     return NetworkFit(
         network=net, codes=codes, target_rates_hz=target_rates, model_rates_hz=model_rates,
@@ -1848,4 +2151,4 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         bin_size=float(binned.bin_size), trial_durations=np.asarray(durations_all, float),
         trial_labels={key: np.asarray(v) for key, v in binned.labels.items()},
         window=tuple(binned.window), align=binned.align,
-        train_trials=None if train_trials is None else train, notes=notes)
+        train_trials=None if train_trials is None else train, notes=notes, **cue_kw)

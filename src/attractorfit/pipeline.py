@@ -353,7 +353,7 @@ def fit_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
                          extra_neurons=nw["extra_neurons"],
                          tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
                          recording=rec, condition=cond if cond else False,
-                         train_trials=train,
+                         train_trials=train, cue_drive=nw.get("cue_drive", False),
                          rng=np.random.default_rng(model_streams(seed)["fit"]),
                          progress=False)
     result.network_fit = nf
