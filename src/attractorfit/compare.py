@@ -290,16 +290,18 @@ class _PooledDurations:
 
     Cumulative counts on the grid of distinct durations are stored per surrogate
     (B x G), so a weighted pool costs one matrix-vector product, not a concatenation.
+    The counts are stored as float64 so the product runs in BLAS (integer products do
+    not); they are whole numbers far below 2**53, so the product is exact.
     """
 
     def __init__(self, durations, observed):
         self.grid = np.unique(np.concatenate(durations)) if durations else np.zeros(0)
         g = self.grid
         self.le = np.array([np.searchsorted(np.sort(d), g, side="right") for d in durations],
-                           dtype=np.int64).reshape(len(durations), g.size)
+                           dtype=np.float64).reshape(len(durations), g.size)
         self.ev = np.array([_at_risk_and_events(d, o, g)[1] for d, o in
                             zip(durations, observed)],
-                           dtype=np.int64).reshape(len(durations), g.size)
+                           dtype=np.float64).reshape(len(durations), g.size)
         self.n = np.array([len(d) for d in durations], dtype=np.int64)
         self.durations, self.observed = durations, observed
 
@@ -317,8 +319,9 @@ class _PooledDurations:
         total = int(w @ self.n)
         if d_t.size == 0 or total == 0:
             return nan
-        le = w @ self.le
-        ev = w @ self.ev
+        wf = w.astype(np.float64)
+        le = np.rint(wf @ self.le).astype(np.int64)    # exact: whole numbers < 2**53
+        ev = np.rint(wf @ self.ev).astype(np.int64)
         times = np.unique(np.concatenate([self.grid[ev > 0], d_t[o_t]]))
         if times.size == 0:
             return nan
@@ -339,9 +342,10 @@ class _PooledValues:
         vals = [v[np.isfinite(v)] for v in vals]
         self.values = vals
         self.grid = np.unique(np.concatenate(vals)) if vals else np.zeros(0)
+        # float64 so the weighted sum runs in BLAS; whole numbers, so it stays exact
         self.le = np.array([np.searchsorted(np.sort(v), self.grid, side="right")
-                            for v in vals], dtype=np.int64).reshape(len(vals),
-                                                                     self.grid.size)
+                            for v in vals], dtype=np.float64).reshape(len(vals),
+                                                                       self.grid.size)
         self.n = np.array([v.size for v in vals], dtype=np.int64)
         self._target = {}
 
@@ -368,7 +372,7 @@ class _PooledValues:
         total = int(w @ self.n)
         if n_t == 0 or total == 0:
             return float("nan")
-        f_pool = (w @ self.le) / total                               # at grid points
+        f_pool = np.rint(w.astype(np.float64) @ self.le) / total     # at grid points
         f_pool_t = np.where(j >= 0, f_pool[np.clip(j, 0, None)], 0.0)
         return float(max(np.max(np.abs(f_t_grid - f_pool)) if self.grid.size else 0.0,
                          np.max(np.abs(f_t - f_pool_t))))
