@@ -37,6 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg, optimize
 
+from attractorfit._threads import single_threaded
 from attractorfit._validation import check_array, check_nonnegative, check_positive
 from attractorfit.errors import InputError, InputWarning
 
@@ -285,6 +286,7 @@ def pseudoinverse_matrix(r, x, *, tau_s, scale=1.0, rcond=1e-10):
     return scale * x @ linalg.pinv(r, rtol=rcond) / tau_s
 
 
+@single_threaded
 def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin=0.2,
                       pattern_weights=None, weight_floor=1e-3, rcond=1e-10, max_iter=300,
                       max_slsqp=600):
