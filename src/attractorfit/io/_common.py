@@ -59,10 +59,10 @@ def check_file(path, *, folder: bool = False) -> str:
     return path
 
 
-def time_factor(time_unit) -> float:
-    """Factor from ``time_unit`` ('s' or 'ms') to seconds."""
+def time_factor(time_unit, *, option: str = "time_unit") -> float:
+    """Factor from ``time_unit`` ('s' or 'ms') to seconds; ``option`` names it in errors."""
     if not isinstance(time_unit, str) or time_unit not in TIME_UNITS:
-        raise InputError(f"time_unit: expected 's' or 'ms', got {time_unit!r}")
+        raise InputError(f"{option}: expected 's' or 'ms', got {time_unit!r}")
     return TIME_UNITS[time_unit]
 
 
@@ -288,9 +288,8 @@ def resolve_trials(file_trials, trials_path, *, source: str, time_unit: str,
     recording, a warning saying so. The table's times are in ``trials_time_unit``
     (default: ``time_unit``).
     """
-    if trials_time_unit is not None and (not isinstance(trials_time_unit, str)
-                                         or trials_time_unit not in TIME_UNITS):
-        raise InputError(f"trials_time_unit: expected 's' or 'ms', got {trials_time_unit!r}")
+    if trials_time_unit is not None:
+        time_factor(trials_time_unit, option="trials_time_unit")
     if trials_path is None:
         if trials_time_unit is not None:
             raise InputError(f"trials_time_unit: given ({trials_time_unit!r}) without a "

@@ -68,7 +68,7 @@ def _read_spikes_block(cls, path):
         _check_hdf5_size(path)
     io = cls(path, **_READ_ONLY_KWARGS.get(_full_name(cls), {}))
     try:
-        lazy = bool(getattr(io, "support_lazy", False))
+        lazy = lazy_ok(io)
         block = io.read_block(lazy=True) if lazy else io.read_block()
         if block is None:
             raise ValueError("the file holds no block of data")
@@ -92,9 +92,9 @@ def _read_spikes_block(cls, path):
             close()
 
 
-def lazy_ok(cls) -> bool:
-    """Whether the IO class can read lazily (and so report sizes before loading)."""
-    return bool(getattr(cls, "support_lazy", False))
+def lazy_ok(io) -> bool:
+    """Whether the IO class (or instance) can read lazily (and so report sizes first)."""
+    return bool(getattr(io, "support_lazy", False))
 
 
 def _check_hdf5_size(path) -> None:

@@ -117,17 +117,13 @@ def _warn_if_least_squares(res, r, x, rcond):
         return
     sv = linalg.svdvals(r)
     rank = int(np.sum(sv > rcond * sv[0]))
-    same = ""
     p = r.shape[1]
     tol = 1e-9 * float(np.max(np.abs(r)))
-    for a in range(p):
-        for b in range(a + 1, p):
-            if np.all(np.abs(r[:, a] - r[:, b]) <= tol) and np.any(x[:, a] != x[:, b]):
-                same = (f"; patterns {a} and {b} have the same rates but different codes, "
-                        "so no decoder can tell them apart")
-                break
-        if same:
-            break
+    pair = next(((a, b) for a in range(p) for b in range(a + 1, p)
+                 if np.all(np.abs(r[:, a] - r[:, b]) <= tol) and np.any(x[:, a] != x[:, b])),
+                None)
+    same = "" if pair is None else (f"; patterns {pair[0]} and {pair[1]} have the same rates "
+                                    "but different codes, so no decoder can tell them apart")
     warnings.warn(f"decoder_{res.rule}: the {p} patterns' rates have rank {rank}, and the "
                   f"codes are not reachable from them{same}; used the least-squares "
                   f"(minimum-norm) decoder, relative residual {res.residual:.3g}",
