@@ -46,6 +46,7 @@ import os
 import numpy as np
 
 from attractorfit import pipeline
+from attractorfit._threads import one_thread
 from attractorfit.errors import InputError
 
 log = logging.getLogger("attractorfit")
@@ -367,7 +368,7 @@ def restore_states(folder, recording, cfg: dict, *, need_discreteness: bool = Fa
         need(folder, "discreteness.npz", "states", command)
     binned = pipeline.analysed_counts(pipeline.bin_for_analysis(recording, cfg))
     res = pipeline.RunResult(config=cfg, recording=recording, binned=binned, folder=folder)
-    with pipeline._deterministic_threads():
+    with one_thread():
         res.state_fit = StateFit.from_arrays(_load_npz(folder, MARKERS["states"]), binned)
     if os.path.exists(folder.file("discreteness.npz")):
         res.discreteness = unpack_result(_load_npz(folder, "discreteness.npz"))

@@ -18,8 +18,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from attractorfit._threads import one_thread
 from attractorfit._output import atomic_writer, write_csv, write_json
+from attractorfit._threads import one_thread
 from attractorfit.config import check_config_for_data, dumps_config, resolve_config
 from attractorfit.errors import InputError, InputWarning
 
@@ -157,9 +157,6 @@ class RunResult:
     unit_drift: object = None
 
 
-_deterministic_threads = one_thread  # BLAS pools pinned to one thread (see _threads)
-
-
 def bin_for_analysis(recording, cfg: dict):
     """Bin ``recording`` as the configuration's [analysis] section says."""
     from attractorfit.binning import bin_spikes
@@ -196,7 +193,7 @@ def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int
 
     cfg = resolve_config(cfg) if cfg is None or "run" not in cfg else cfg
     state_seed, disc_seed = np.random.SeedSequence(seed).spawn(2)
-    with _deterministic_threads():
+    with one_thread():
         binned = bin_for_analysis(recording, cfg)
         check_config_for_data(cfg, n_units=binned.n_units)
         cond = _condition_column(binned, cfg)
@@ -218,7 +215,7 @@ def run_states(recording, cfg: dict | None = None, *, seed: int = 0, n_jobs: int
                                      progress=progress)
     result = RunResult(config=cfg, recording=recording, binned=analysed, state_fit=state_fit,
                        discreteness=disc)
-    with _deterministic_threads():
+    with one_thread():
         run_lab_checks(result, seed=seed)
     return result
 
@@ -345,7 +342,7 @@ def fit_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
     nw = cfg["network"]
     b, sf, rec = result.binned, result.state_fit, result.recording
     cond = _condition_column(b, cfg)
-    with _deterministic_threads():
+    with one_thread():
         train, held = held_out_trials(result, seed=seed)
         _note(progress, "fitting the network")
         nf = fit_network(b, sf, rule=nw["rule"], hypercube=nw["hypercube"],
@@ -375,7 +372,7 @@ def simulate_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
     n = cp["n_surrogates"] if n is None else int(n)
     nf = result.network_fit
     rng = np.random.default_rng(model_streams(seed)["surrogates"])
-    with _deterministic_threads():
+    with one_thread():
         _note(progress, f"simulating {n} surrogate recordings")
         if scheduler or local_cluster:
             from attractorfit.sweep import run_parallel
@@ -405,7 +402,7 @@ def compare_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
     cond = _condition_column(b, cfg)
     sur = result.surrogates
     streams = model_streams(seed)
-    with _deterministic_threads():
+    with one_thread():
         held = result.held_out
         if held is None:
             held = held_out_trials(result, seed=seed)[1]

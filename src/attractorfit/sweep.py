@@ -491,10 +491,10 @@ def _shared_handles(runner, shared, select, items):
 
 def _pinned(func_item, data=_NONE):
     """Call ``func(item[, data])`` with BLAS/OpenMP pools pinned to one thread."""
-    from threadpoolctl import threadpool_limits
+    from attractorfit._threads import one_thread
 
     func, item = func_item
-    with threadpool_limits(limits=1):
+    with one_thread():
         return func(item) if isinstance(data, _NoneType) else func(item, data)
 
 
@@ -566,9 +566,9 @@ def _one_line(exc: BaseException) -> str:
 @contextmanager
 def _task_context():
     """BLAS/OpenMP pinned to one thread; warnings collected, library chatter dropped."""
-    from threadpoolctl import threadpool_limits
+    from attractorfit._threads import one_thread
 
-    with threadpool_limits(limits=1), warnings.catch_warnings(record=True) as caught:
+    with one_thread(), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         warnings.simplefilter("ignore", DeprecationWarning)
         warnings.simplefilter("ignore", FutureWarning)
