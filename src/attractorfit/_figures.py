@@ -579,7 +579,6 @@ def _lab_methods(result) -> list:
 
 def _robustness_words(rob) -> str:
     """Plain words on whether the state analysis depends on the settings."""
-    by = {st.name: st for st in rob.settings}
     s0 = rob.n_states
     parts = []
     fixed = [st for st in rob.settings[1:] if st.n_states == s0]
@@ -597,21 +596,19 @@ def _robustness_words(rob) -> str:
                      f"variation distance, {worst.name}).")
     more = [st for st in rob.settings[1:] if st.n_states > s0]
     for st in more:
-        extra = [float(st.occupancy[k]) for k in range(st.n_states)
-                 if st.match[k] < 0 or np.nan_to_num(st.match_r[k]) < 0.8]
+        extra = [float(o) for o, sim in zip(st.occupancy, st.similar) if not sim]
         parts.append(f"With {st.n_states} states, {st.n_matched_similar} of the {s0} chosen "
                      f"states are found again; the states without a close match take "
                      f"{_pct(sum(extra))} of the assigned time.")
     fewer = [st for st in rob.settings[1:] if 0 < st.n_states < s0]
     for st in fewer:
-        found = {int(j) for j, r in zip(st.match, st.match_r)
-                 if j >= 0 and np.nan_to_num(r) >= 0.8}
+        found = {int(j) for j in st.match[st.similar]}
         lost = sorted(set(range(s0)) - found)
         parts.append(f"With {st.n_states} states, {st.n_matched_similar} of the {s0} chosen "
                      "states are found again" + (f" (not found: state "
                                                  f"{', '.join(map(str, lost))})" if lost
                                                  else "") + ".")
-    if "chosen" in by:
+    if any(st.name == "chosen" for st in rob.settings):
         parts.append("A conclusion that changes between these settings rests on the "
                      "setting, not on the data alone.")
     return " ".join(parts)

@@ -154,6 +154,24 @@ def _title(ax, title) -> None:
         ax.set_title(_text(title), parse_math=False, fontsize=_FS_TITLE)
 
 
+def _suptitle(fig, title) -> None:
+    if title:
+        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+
+
+def _p_text(p) -> str:
+    """A p-value as written on figures: three significant digits, or n/a."""
+    return "n/a" if p is None or not np.isfinite(p) else f"{float(p):.3g}"
+
+
+def _names(name: str, values, what: str) -> list:
+    """Category names as text; at least one is required."""
+    out = [_text(v) for v in values]
+    if not out:
+        raise InputError(f"{name}: expected at least one {what}, got none")
+    return out
+
+
 def _labels(labels, n: int, name: str, default) -> list:
     if labels is None:
         return [default(i) for i in range(n)]
@@ -739,8 +757,7 @@ def dwell_survival(data, model=None, *, state_labels=None,
     handles.append(Line2D([], [], color="#555555", ls="none", marker="|", ms=7,
                           label="censored dwell (cut by trial edge)"))
     _legend_outside(fig, handles)
-    if title:
-        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    _suptitle(fig, title)
     return _finish(fig)
 
 
@@ -983,8 +1000,7 @@ def distribution_panels(panels, *, kind: str = "ecdf", bins="auto",
         handles.append(Line2D([], [], color=MODEL_COLOR, ls="--", lw=1.4,
                               label=_text(labels[1])))
     _legend_outside(fig, handles)
-    if title:
-        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    _suptitle(fig, title)
     return _finish(fig)
 
 
@@ -1084,8 +1100,7 @@ def state_by_condition(table, *, matching=None, state_labels=None,
         handles.append(Line2D([], [], marker="D", ms=7, mfc="white", mec="black", ls="none",
                               label="in cue-matching state"))
     _legend_outside(fig, handles)
-    if title:
-        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    _suptitle(fig, title)
     return _finish(fig)
 
 
@@ -1189,7 +1204,7 @@ def null_distribution(observed: float, null_values, *, p_value: float, label: st
     ax.set_ylim(0, ax.get_ylim()[1] * 1.25)
     ax.set_xlabel(_text(label), parse_math=False)
     ax.set_ylabel("number of null datasets")
-    pv = "n/a" if p_value is None or not np.isfinite(p_value) else f"{float(p_value):.3g}"
+    pv = _p_text(p_value)
     text = f"p = {pv}" + (f"\nverdict: {_text(verdict)}" if verdict else "")
     ax.text(0.98, 0.97, text, transform=ax.transAxes, ha="right", va="top",
             fontsize=_FS_SMALL + 1, parse_math=False,
@@ -1300,8 +1315,7 @@ def model_diagnostics(margins, residuals, readout_noise_ratio, *, capacity, load
                    Patch(facecolor="#BBBBBB", hatch="//", edgecolor="#333333",
                          label="unused vertex (stable = spurious attractor)")]
     _legend_outside(fig, handles)
-    if title:
-        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    _suptitle(fig, title)
     return _finish(fig)
 
 
@@ -1330,10 +1344,8 @@ def decoding_accuracy(names, values, nulls, chance, p_values, *,
     """
     from matplotlib.patches import Rectangle
 
-    labels = [_text(n) for n in names]
+    labels = _names("names", names, "label")
     n = len(labels)
-    if n == 0:
-        raise InputError("names: expected at least one label, got none")
     val = _vector("values", values, n)
     ch = _vector("chance", chance, n)
     pv = _vector("p_values", p_values, n)
@@ -1355,8 +1367,7 @@ def decoding_accuracy(names, values, nulls, chance, p_values, *,
         ax.plot([x[i] - 0.32, x[i] + 0.32], [ch[i], ch[i]], color="black", ls="--", lw=1.0)
         ax.plot(x[i], val[i], marker="D", ms=8, color="#D55E00", mec="black", mew=0.6,
                 ls="none")
-        ptxt = "n/a" if not np.isfinite(pv[i]) else f"{pv[i]:.3g}"
-        ax.text(x[i], 1.03, f"p = {ptxt}", ha="center", va="bottom", fontsize=_FS_SMALL,
+        ax.text(x[i], 1.03, f"p = {_p_text(pv[i])}", ha="center", va="bottom", fontsize=_FS_SMALL,
                 transform=blended_transform_factory(ax.transData, ax.transAxes))
     ax.set_xlim(-0.6, n - 0.4)
     ax.set_ylim(0, 1.0)
@@ -1393,10 +1404,8 @@ def robustness_panel(setting_names, occupancy, mean_dwell_s, metrics, *, state_l
     -------
     matplotlib.figure.Figure
     """
-    names = [_text(n) for n in setting_names]
+    names = _names("setting_names", setting_names, "setting")
     m = len(names)
-    if m == 0:
-        raise InputError("setting_names: expected at least one setting, got none")
     occ = check_array("occupancy", occupancy, ndim=2, finite=False)
     dw = check_array("mean_dwell_s", mean_dwell_s, ndim=2, finite=False)
     if occ.shape[0] != m or dw.shape != occ.shape:
@@ -1441,8 +1450,7 @@ def robustness_panel(setting_names, occupancy, mean_dwell_s, metrics, *, state_l
         ax.set_xlabel("setting")
         ax.axvspan(-0.4, 0.4, color="#EEEEEE", zorder=0)
     _legend_outside(fig, handles)
-    if title:
-        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    _suptitle(fig, title)
     return _finish(fig)
 
 
@@ -1501,9 +1509,7 @@ def drift_panel(rho, drifting, block_occupancy, *, p_value: float, state_labels=
     ax1.set_xlabel("consecutive trials, session order")
     ax1.set_ylabel("occupancy (fraction of time)")
     ax1.set_ylim(0, 1.0)
-    ptxt = "n/a" if p_value is None or not np.isfinite(p_value) else f"{float(p_value):.3g}"
-    _title(ax1, f"states by block (p = {ptxt})" + (f"\n{_text(note)}" if note else ""))
+    _title(ax1, f"states by block (p = {_p_text(p_value)})" + (f"\n{_text(note)}" if note else ""))
     ax1.legend(fontsize=_FS_SMALL, frameon=False, loc="center left", bbox_to_anchor=(1.0, 0.5))
-    if title:
-        fig.suptitle(_text(title), fontsize=_FS_TITLE, parse_math=False)
+    _suptitle(fig, title)
     return _finish(fig)

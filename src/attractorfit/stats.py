@@ -22,6 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from attractorfit.errors import InputError
 from attractorfit.recording import REFRACTORY_S, Recording
 
 __all__ = ["isi_cv", "fano_factor", "contamination_fraction", "count_correlations",
@@ -165,7 +166,6 @@ def spearman_trend(values) -> tuple:
 
     x = np.asarray(values, dtype=float)
     if x.ndim != 2 or x.shape[0] < 3:
-        from attractorfit.errors import InputError
         raise InputError(f"values: expected (trials x units) with at least 3 trials, got "
                          f"shape {x.shape}")
     n = x.shape[0]
@@ -297,8 +297,8 @@ def unit_drift(rate_hz, *, unit_ids=None, alpha: float = 0.05) -> UnitDrift:
     q = benjamini_hochberg(p)
     n = x.shape[0]
     tt = np.arange(n, dtype=float) - (n - 1) / 2.0
-    slope = (tt @ (x - x.mean(axis=0))) / np.sum(tt ** 2)
     mean = x.mean(axis=0)
+    slope = (tt @ (x - mean)) / np.sum(tt ** 2)
     with np.errstate(invalid="ignore", divide="ignore"):
         rel = np.where(mean > 0, slope * (n - 1) / mean, np.nan)
     ids = [str(i) for i in range(x.shape[1])] if unit_ids is None else list(unit_ids)

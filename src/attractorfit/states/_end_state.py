@@ -182,6 +182,14 @@ def centroid_permutation_test(x, y, *, folds, n_permutations: int = 199,
     predictions : ndarray of int (n,)
         Predicted class of every trial (observed labels) when it was in the test fold.
     """
+    val, null, p, pred, _, _ = _permutation_scores(x, y, folds=folds,
+                                                   n_permutations=n_permutations, score=score,
+                                                   permutations=permutations, rng=rng)
+    return val, null, p, pred
+
+
+def _permutation_scores(x, y, *, folds, n_permutations, score, permutations, rng) -> tuple:
+    """``centroid_permutation_test`` plus the observed plain and balanced accuracies."""
     rng = check_rng(rng)
     n_permutations = check_int("decoding.n_permutations", n_permutations, low=1)
     if score not in ("accuracy", "balanced_accuracy"):
@@ -205,7 +213,7 @@ def centroid_permutation_test(x, y, *, folds, n_permutations: int = 199,
     null = val[1:]
     # a tolerance so that float noise between identical scores does not decide
     b = int(np.sum(null >= val[0] - 1e-12))
-    return float(val[0]), null, (1 + b) / (n_permutations + 1), pred[0]
+    return float(val[0]), null, (1 + b) / (n_permutations + 1), pred[0], acc[0], bal[0]
 
 
 @dataclass
@@ -362,9 +370,11 @@ def decode_end_state(decoding, labels, *, end_fraction: float = 0.1,
         levels = [first[t] for t in levels_text]
         x = x_all[keep]
         folds = stratified_folds(y, n_folds, rng)
-        val, null, p, pred = centroid_permutation_test(x, y, folds=folds, score=score,
-                                                       n_permutations=n_permutations, rng=rng)
-        acc, bal, _ = _centroid_accuracy(x, y[None, :], folds, levels_text.size)
+        # the observed labels are row 0 of the permutation batch: its plain and balanced
+        # accuracies come with it
+        val, null, p, pred, acc, bal = _permutation_scores(
+            x, y, folds=folds, score=score, n_permutations=n_permutations, permutations=None,
+            rng=rng)
         conf = np.zeros((levels_text.size, levels_text.size), dtype=np.int64)
         np.add.at(conf, (y, pred), 1)
         majority = float(np.bincount(y).max() / y.size)
@@ -373,6 +383,6 @@ def decode_end_state(decoding, labels, *, end_fraction: float = 0.1,
             end_fraction=float(end_fraction), n_folds=len(folds), score=score, value=val,
             chance=1.0 / levels_text.size if score == "balanced_accuracy" else majority,
             null_mean=float(null.mean()), null=null, p_value=float(p),
-            accuracy=float(acc[0]), majority=majority, balanced_accuracy=float(bal[0]),
+            accuracy=float(acc), majority=majority, balanced_accuracy=float(bal),
             confusion=conf)
     return out

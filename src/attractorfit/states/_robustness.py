@@ -96,6 +96,10 @@ def match_states(rates_ref, rates_other, *, centre=None) -> tuple:
 
 
 # --------------------------------------------------------------------------- panel
+#: Rate-modulation correlation from which a matched state counts as found again.
+SIMILAR_R = 0.8
+
+
 @dataclass
 class RobustnessSetting:
     """The state analysis under one alternative setting.
@@ -143,9 +147,15 @@ class RobustnessSetting:
     agreement: float
 
     @property
+    def similar(self) -> np.ndarray:
+        """Bool (S',): matched to a chosen state with rate-modulation correlation
+        >= ``SIMILAR_R``."""
+        return (self.match >= 0) & (np.nan_to_num(self.match_r) >= SIMILAR_R)
+
+    @property
     def n_matched_similar(self) -> int:
-        """Chosen states found again with rate-modulation correlation >= 0.8."""
-        return int(np.sum((self.match >= 0) & (np.nan_to_num(self.match_r) >= 0.8)))
+        """Chosen states found again with rate-modulation correlation >= ``SIMILAR_R``."""
+        return int(np.sum(self.similar))
 
 
 @dataclass
