@@ -186,6 +186,23 @@ def test_noise_stream_is_standard_normal():
     assert abs(np.corrcoef(x[:1000], y)[0, 1]) < 0.15
 
 
+def test_noise_lanes_are_uncorrelated():
+    # The 16 SIMD lanes interleave: neighbours in a step come from different lanes, and
+    # index i of consecutive steps from the same lane. Serial correlation at lags 1 (across
+    # lanes), 16 (within a lane) and between steps must be zero within sampling error
+    # (standard error 1/sqrt(n) for independent normals, textbook), and a step of 1000
+    # neurons (not a multiple of 16) must still be standard normal (SciPy KS).
+    state = seed_state(np.random.default_rng(3))
+    steps = np.array([normals(state, 1000) for _ in range(400)])
+    x = steps.ravel()
+    se = 1 / np.sqrt(x.size)
+    for lag in (1, 15, 16, 17):
+        assert abs(np.corrcoef(x[:-lag], x[lag:])[0, 1]) < 5 * se
+    between = np.corrcoef(steps[:-1].ravel(), steps[1:].ravel())[0, 1]
+    assert abs(between) < 5 * se
+    assert stats.kstest(x, "norm").pvalue > 1e-3
+
+
 def test_determinism_and_trial_streams():
     net = _small_network()
     a = net.simulate(0.1, n_trials=3, seed=4)

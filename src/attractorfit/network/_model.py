@@ -358,9 +358,9 @@ class LowRankNetwork:
         -----
         Each trial starts with membranes drawn uniformly in ``[reset, threshold)`` from
         the trial's generator (no synchronous first volley), no neuron refractory, and
-        readout ``y0``. The generator then seeds the trial's fast noise stream (four
-        64-bit words, :func:`attractorfit.network._random.seed_state`), which supplies N
-        standard normals per step (see :mod:`attractorfit.network._simulate` for the
+        readout ``y0``. The generator then seeds the trial's fast noise streams (16 SIMD
+        lanes plus a rejection stream, :func:`attractorfit.network._random.seed_state`),
+        which supply N standard normals per step (see :mod:`attractorfit.network._simulate` for the
         step order).
         """
         duration = check_positive("duration", duration)

@@ -24,7 +24,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from attractorfit.network._random import ZIG_F, ZIG_K, ZIG_W, fill_normals
+from attractorfit.network._random import LANES, ZIG_F, ZIG_K, ZIG_W, fill_normals
 
 __all__ = ["simulate_trial"]
 
@@ -43,7 +43,7 @@ def simulate_trial(state, encoder_t, decoder_t, bias, threshold, reset, noise_co
 
     Parameters
     ----------
-    state : ndarray (4,) uint64
+    state : ndarray (4, LANES + 1) uint64
         The trial's noise generator state (:mod:`attractorfit.network._random`).
     encoder_t : ndarray (K, N), C-contiguous
         Transposed encoder (one contiguous row per latent dimension, for SIMD loops).
@@ -68,8 +68,9 @@ def simulate_trial(state, encoder_t, decoder_t, bias, threshold, reset, noise_co
         The readout is stored before steps ``0, r, 2r, ...`` and after the last step when
         ``n_steps`` is a multiple of ``r``.
     use_noise : bool
-        Draw noise: N standard normals per step, one per neuron in index order (refractory
-        neurons' draws are discarded).
+        Draw noise: one call of :func:`~attractorfit.network._random.fill_normals` per
+        step for N normals (padded to a multiple of ``LANES``), one per neuron in index
+        order (refractory neurons' draws and the padding are discarded).
 
     Returns
     -------
@@ -86,7 +87,10 @@ def simulate_trial(state, encoder_t, decoder_t, bias, threshold, reset, noise_co
     latent = np.empty((n_samples, k))
     z = np.empty(k)
     inp = np.empty(n)
-    xi = np.zeros(n)
+    n_pad = -(-n // LANES) * LANES
+    xi = np.zeros(n_pad)
+    bits = np.empty(n_pad, dtype=np.uint64)
+    rejected = np.empty(n_pad, dtype=np.int64)
     # free_at[i]: first step at which neuron i integrates again (refractory bookkeeping
     # without branches, so that the membrane loop vectorises).
     free_at = ref_left.copy()
@@ -109,7 +113,7 @@ def simulate_trial(state, encoder_t, decoder_t, bias, threshold, reset, noise_co
             for i in range(n):
                 inp[i] += encoder_t[q, i] * zq
         if use_noise:
-            fill_normals(state, xi, ZIG_K, ZIG_W, ZIG_F)
+            fill_normals(state, bits, rejected, xi, ZIG_K, ZIG_W, ZIG_F)
         nxt = step + 1 + n_ref
         count = 0
         for i in range(n):
