@@ -6,7 +6,7 @@ import json
 
 import numpy as np
 import pytest
-from scipy import integrate, special
+from scipy import integrate, special, stats
 from sklearn.metrics import r2_score
 
 from attractorfit.binning import bin_spikes
@@ -432,6 +432,41 @@ def test_to_arrays_round_trip(small_fit):
         np.testing.assert_array_equal(x, y)
     with pytest.raises(InputError, match="missing 'encoder'"):
         NetworkFit.from_arrays({k: v for k, v in d.items() if k != "encoder"})
+
+
+def test_latent_state_use_closed_form():
+    # An isotropic zero-mean Gaussian latent falls in each of the 2^K orthants with
+    # probability 2^-K (closed form, symmetry); latents sitting at the codes are all "on".
+    from attractorfit.fit import latent_state_use
+
+    codes = np.array([[1, 1, -1, 1], [-1, 1, 1, -1], [1, -1, -1, -1]])
+    y = np.random.default_rng(0).normal(size=(64_000, 4))
+    on, use, near = latent_state_use([y[:40_000], y[40_000:]], codes)
+    p = 1 / 16
+    np.testing.assert_allclose(use, p, atol=5 * np.sqrt(p * (1 - p) / y.shape[0]))
+    assert on == pytest.approx(use.sum())
+    # near: |y_k| > 0.5 on all 4 axes in a state's orthant, 3 * (P(y > 0.5))^4 (normal cdf)
+    q = 3 * stats.norm.sf(0.5) ** 4
+    assert near == pytest.approx(q, abs=5 * np.sqrt(q * (1 - q) / y.shape[0]))
+    on, use, near = latent_state_use([0.7 * codes[[0, 0, 2, 1]]], codes)
+    assert on == 1.0 and near == 1.0 and use.tolist() == [0.5, 0.25, 0.25]
+    on, use, near = latent_state_use([np.zeros((0, 4))], codes)
+    assert np.isnan(on) and np.isnan(near)
+
+
+def test_fit_reports_where_its_latent_sits(small_fit):
+    f = small_fit
+    assert 0.0 <= f.latent_near_state <= f.latent_on_state <= 1.0
+    assert f.latent_use.shape == (f.n_states,)
+    assert f.latent_use.sum() == pytest.approx(f.latent_on_state)
+    block = f.summary_block()
+    assert block["latent_on_state"] == f.latent_on_state
+    # model.npz files written before the diagnostic still load (value unknown)
+    d = {k: v for k, v in f.to_arrays().items() if not k.startswith("latent_")}
+    g = NetworkFit.from_arrays(d)
+    assert np.isnan(g.latent_on_state) and g.latent_use is None
+    assert np.isnan(g.latent_near_state)
+    assert len(g.summary_block()["latent_state_use"]) == f.n_states
 
 
 def test_same_rng_same_fit(small, small_fit):

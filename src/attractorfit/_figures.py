@@ -345,6 +345,17 @@ def _model_sections(result, labels, add):
     block = nf.summary_block()
     for note in block.get("notes", []):
         blocks.append(note)
+    on_state = float(getattr(nf, "latent_on_state", float("nan")))
+    if np.isfinite(on_state):
+        use = ", ".join(f"{t} {100 * u:.0f}%" for t, u in zip(nf.vertex_text, nf.latent_use))
+        blocks.append(f"Latent readout of the fitted network (sampled every 10 ms over "
+                      f"{nf.n_calibration_trials} simulated trials): in the orthant of a "
+                      f"state's vertex {100 * on_state:.0f}% of the time ({use}), and within "
+                      "half the way from the orthant's walls to the vertex on every axis "
+                      f"{100 * nf.latent_near_state:.0f}% of the time. States in the "
+                      "comparison are "
+                      "decoded from spikes, as for the data, so this number says how "
+                      "literally the attractor picture describes the fitted model.")
     used = np.ones(nf.n_states, bool)
     fig = plots.model_diagnostics(np.asarray(nf.margins, float),
                                   np.abs(nf.decoder_residual * np.ones(nf.n_states)),
@@ -366,6 +377,8 @@ def _model_sections(result, labels, add):
         assumptions={"compared trials": where, "surrogates": str(c.n_surrogates),
                      "decoder rule": nf.rule, "tau_s": f"{nf.tau_s * 1e3:.0f} ms",
                      "membrane noise": f"{nf.noise:.3g}",
+                     "latent near a state's vertex": _pct(getattr(
+                         nf, "latent_near_state", None)),
                      "cue field": (f"strength {nf.cue_strength:.3g} along each level's "
                                    "most used state" if getattr(nf, "cue_field", None)
                                    is not None else "none (only the first state depends "

@@ -103,7 +103,8 @@ from attractorfit.network import (
 from attractorfit.network._transfer import DISCRETE_THRESHOLD_SHIFT
 
 __all__ = ["NetworkFit", "fit_network", "fit_encoder", "fit_decoder", "extend_codes",
-           "centred_rate_r2", "isi_cv_lif", "noise_from_isi_cv", "rescaled_isi_cv", "RULES"]
+           "centred_rate_r2", "isi_cv_lif", "noise_from_isi_cv", "rescaled_isi_cv",
+           "latent_state_use", "RULES"]
 
 #: Decoder rules accepted by :func:`fit_network`.
 RULES = ("pseudoinverse", "optimized", "hebbian")
@@ -139,6 +140,9 @@ EXTEND_ENUMERATE = 10
 #: ``rank="auto"``: smallest code length whose encoder reaches this centred rate R^2
 #: (chosen from bench_fit.py: with encoder R^2 near 1 the surrogates' rate R^2 was 0.9-0.98).
 AUTO_RANK_R2 = 0.97
+# Below this fraction of time in a state's orthant the fit's notes say the latent is not
+# held at the vertices (a plain threshold of ours: half the time)
+LATENT_ON_STATE_LOW = 0.5
 #: Largest stability margin (units of 1 / tau_s) that may be asked of a vertex.
 MARGIN_RANGE = (0.005, 0.5)
 #: Occupancy rounds: range of the per-vertex readout-noise weights, and the floor added
@@ -726,16 +730,18 @@ def _whole_steps(duration, dt):
     return max(n, 1)
 
 
-def _simulate(network, durations, y0, dt, seed, n_keep, drive=None):
+def _simulate(network, durations, y0, dt, seed, n_keep, drive=None, latents=None):
     """Simulate trials of the given durations (grouped by length); spikes of the first
     ``n_keep`` neurons per trial. ``drive``: optional constant latent input per trial
-    (n_trials, K), held for the whole trial; None (or all zero) for none. Same seed ->
-    same spikes."""
+    (n_trials, K), held for the whole trial; None (or all zero) for none. ``latents``: a
+    list that receives each trial's readout, sampled every 10 ms (samples x K), in trial
+    order. Same seed -> same spikes."""
     durations = np.asarray(durations, float)
     steps = np.array([_whole_steps(d, dt) for d in durations])
     groups = np.unique(steps)
     seeds = np.random.SeedSequence(seed).spawn(len(groups))
     out = [None] * len(durations)
+    lat_of = [None] * len(durations)
     if drive is not None and not np.any(np.asarray(drive, float)):
         drive = None
     for g, ss in zip(groups, seeds):
@@ -750,6 +756,11 @@ def _simulate(network, durations, y0, dt, seed, n_keep, drive=None):
                                record_every=max(1, int(round(0.01 / dt))))
         for j, trial in zip(idx, res.trials):
             out[j] = trial[:n_keep]
+        if latents is not None:
+            for j, lat in zip(idx, res.latent):
+                lat_of[j] = lat
+    if latents is not None:
+        latents.extend(lat_of)
     return out, steps * dt
 
 
@@ -811,6 +822,44 @@ def _cue_unstable(net, codes, fields, dt, rng):
             if hit.size:
                 shift[lv, s] = float(np.min(np.linalg.norm(fp.points[hit] - c, axis=1)))
     return lost, shift
+
+
+def latent_state_use(latents, codes) -> tuple:
+    """Where the network's latent readout spends its time, against the states' codes.
+
+    Parameters
+    ----------
+    latents : sequence of ndarray (samples x K)
+        Readout trajectories (e.g. every 10 ms).
+    codes : ndarray (S, K) of +-1
+
+    Returns
+    -------
+    on_state : float
+        Fraction of samples whose orthant (sign pattern) is a state's code (always 1
+        when every vertex of the cube is a state's).
+    use : ndarray (S,)
+        Fraction of samples in each state's orthant (sums to ``on_state``).
+    near_state : float
+        Fraction of samples within half the way from the orthant's walls to a state's
+        vertex on every axis (``y_k x_k > 0.5`` for all k): held near the vertex.
+
+    Notes
+    -----
+    The data's states are decoded from spikes, which can look like a state's while the
+    latent sits in the orthant of an unused vertex or wanders between vertices. A small
+    ``on_state`` says the fitted network reproduces the decoded states without holding
+    its latent at their vertices: the attractor picture then describes the model poorly.
+    """
+    codes = np.asarray(codes)
+    y = np.concatenate([np.asarray(v, float).reshape(-1, codes.shape[1]) for v in latents])
+    if y.shape[0] == 0:
+        return float("nan"), np.full(codes.shape[0], np.nan), float("nan")
+    signs = np.where(y >= 0, 1, -1)
+    match = np.all(signs[:, None, :] == codes[None, :, :], axis=2)
+    use = match.mean(axis=0)
+    near = np.any(np.all(y[:, None, :] * codes[None, :, :] > 0.5, axis=2), axis=1)
+    return float(use.sum()), use, float(near.mean())
 
 
 def _tvd(p, q) -> float:
@@ -994,6 +1043,9 @@ class NetworkFit:
     condition_tvd: float = float("nan")
     cue_unstable: np.ndarray | None = None
     cue_shift: np.ndarray | None = None
+    latent_on_state: float = float("nan")
+    latent_use: np.ndarray | None = None
+    latent_near_state: float = float("nan")
 
     def _weights(self) -> np.ndarray:
         if self.vertex_weights is None:
@@ -1193,6 +1245,11 @@ class NetworkFit:
             "target_occupancy": [float(v) for v in self.target_occupancy],
             "model_occupancy": [float(v) for v in self.model_occupancy],
             "calibration_occupancy_tvd": float(self.occupancy_tvd),
+            "latent_on_state": float(self.latent_on_state),
+            "latent_near_state": float(self.latent_near_state),
+            "latent_state_use": ([float(v) for v in self.latent_use]
+                                 if self.latent_use is not None
+                                 else [float("nan")] * self.n_states),
             "encoder_rate_r2": float(self.rate_r2),
             "unit_r2_median": float(np.nanmedian(self.unit_r2))
             if np.any(np.isfinite(self.unit_r2)) else float("nan"),
@@ -1278,6 +1335,10 @@ class NetworkFit:
             "has_train_trials": np.bool_(self.train_trials is not None),
             "notes": np.asarray(self.notes, dtype=str).reshape(-1),
             "vertex_weights": self._weights(),
+            "latent_on_state": np.float64(self.latent_on_state),
+            "latent_near_state": np.float64(self.latent_near_state),
+            "latent_use": (np.full(self.n_states, np.nan) if self.latent_use is None
+                           else np.asarray(self.latent_use, float)),
         }
         if self.cue_field is not None:
             n_lev = len(self.levels)
@@ -1351,6 +1412,12 @@ class NetworkFit:
             notes=[str(x) for x in get("notes")],
             vertex_weights=(np.asarray(d["vertex_weights"], float) if "vertex_weights" in d
                             else None),
+            # files written before the latent diagnostic: unknown (NaN)
+            latent_on_state=float(d["latent_on_state"]) if "latent_on_state" in d
+            else float("nan"),
+            latent_use=(np.asarray(d["latent_use"], float) if "latent_use" in d else None),
+            latent_near_state=float(d["latent_near_state"]) if "latent_near_state" in d
+            else float("nan"),
             # files written before the cue field have none of these keys: no field
             **({} if "cue_field" not in d else dict(
                 cue_field=get("cue_field").astype(float),
@@ -2107,6 +2174,19 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     if len(spur_pts):
         notes.append(f"The rate picture has {len(spur_pts)} stable fixed point(s) that are not "
                      "a state's vertex (spurious attractors).")
+    # where the final network's latent spends its time (one more calibration-size run)
+    lat_list = []
+    g_drive = float(hist["cue_strength"][best]) if cue_on else 0.0
+    _simulate(net, cal_small["durations"], cal_small["y0"], dt, seed_cal + 2, n_units,
+              drive=g_drive * unit_fields[cal_small["rows"]] if g_drive > 0 else None,
+              latents=lat_list)
+    on_state, lat_use, near_state = latent_state_use(lat_list, codes)
+    if on_state < LATENT_ON_STATE_LOW:
+        notes.append(f"The network's latent readout was in the orthant of a state's vertex "
+                     f"only {100 * on_state:.0f}% of the time (the rest between vertices or "
+                     "near unused vertices): its decoded states come from spikes that "
+                     "resemble the states' rates, not from a latent held at their vertices, "
+                     "so the attractor picture describes this model loosely.")
     if dec.residual > 1e-6:
         notes.append(f"The fixed-point system is solved only in the least-squares sense "
                      f"(relative residual {dec.residual:.3g}).")
@@ -2151,4 +2231,6 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         bin_size=float(binned.bin_size), trial_durations=np.asarray(durations_all, float),
         trial_labels={key: np.asarray(v) for key, v in binned.labels.items()},
         window=tuple(binned.window), align=binned.align,
-        train_trials=None if train_trials is None else train, notes=notes, **cue_kw)
+        train_trials=None if train_trials is None else train, notes=notes,
+        latent_on_state=on_state, latent_use=lat_use, latent_near_state=near_state,
+        **cue_kw)
