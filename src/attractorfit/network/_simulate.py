@@ -7,7 +7,8 @@ One call simulates one trial. Per step ``n`` (time ``n dt`` to ``(n + 1) dt``):
    ``I_i = bias_i + E[i] . z``:
    ``V_i <- I_i + (V_i - I_i) a + c_i xi``, ``a = exp(-dt / tau_m)``,
    ``c_i = noise_i sqrt((1 - a^2) / 2)``, ``xi`` a standard normal from the trial's noise
-   stream (N draws per step, one per neuron in index order, those of refractory neurons
+   streams (one ``fill_normals`` call of N draws per step, padded to a multiple of 16
+   lanes, one per neuron in index order, those of refractory neurons and the padding
    discarded; none when the network has no noise); a refractory neuron stays at
    ``reset_i`` and counts down;
 3. a neuron with ``V_i >= threshold_i`` spikes: ``V_i <- reset_i``, it is refractory for
