@@ -87,10 +87,9 @@ def _rotl(x, k):
     return (x << np.uint64(k)) | (x >> np.uint64(64 - k))
 
 
-@njit(cache=True)
-def next_u64(s):
-    """xoshiro256++: next 64-bit output; advances the state array ``s`` in place."""
-    s0, s1, s2, s3 = s[0], s[1], s[2], s[3]
+@njit(cache=True, inline="always")
+def _step(s0, s1, s2, s3):
+    """One xoshiro256++ step on the four state words: (output, new words)."""
     result = _rotl(s0 + s3, 23) + s0
     t = s1 << np.uint64(17)
     s2 ^= s0
@@ -98,11 +97,13 @@ def next_u64(s):
     s1 ^= s2
     s0 ^= s3
     s2 ^= t
-    s3 = _rotl(s3, 45)
-    s[0] = s0
-    s[1] = s1
-    s[2] = s2
-    s[3] = s3
+    return result, s0, s1, s2, _rotl(s3, 45)
+
+
+@njit(cache=True)
+def next_u64(s):
+    """xoshiro256++: next 64-bit output; advances the state array ``s`` in place."""
+    result, s[0], s[1], s[2], s[3] = _step(s[0], s[1], s[2], s[3])
     return result
 
 
@@ -152,22 +153,8 @@ def _lane_bits(s, bits):
     for blk in range(bits.shape[0] // LANES):
         base = blk * LANES
         for j in range(LANES):
-            a0 = s[0, j]
-            a1 = s[1, j]
-            a2 = s[2, j]
-            a3 = s[3, j]
-            t0 = a0 + a3
-            bits[base + j] = ((t0 << np.uint64(23)) | (t0 >> np.uint64(41))) + a0
-            t = a1 << np.uint64(17)
-            a2 ^= a0
-            a3 ^= a1
-            a1 ^= a2
-            a0 ^= a3
-            a2 ^= t
-            s[0, j] = a0
-            s[1, j] = a1
-            s[2, j] = a2
-            s[3, j] = (a3 << np.uint64(45)) | (a3 >> np.uint64(19))
+            bits[base + j], s[0, j], s[1, j], s[2, j], s[3, j] = _step(
+                s[0, j], s[1, j], s[2, j], s[3, j])
 
 
 @njit(cache=True)
