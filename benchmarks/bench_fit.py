@@ -69,6 +69,7 @@ SETTINGS = {  # name: options of fit_network (the run's defaults: "opt")
     "opt": dict(rule="optimized"),
     "opt-k0": dict(rule="optimized", rank=None),
     "opt-full": dict(rule="optimized", rank="full"),
+    "opt-spectral": dict(rule="optimized", stability="spectral"),  # session-2 decoder
     "opt-m20": dict(rule="optimized", margin=0.2),   # deeper vertices asked for
     "opt-m40": dict(rule="optimized", margin=0.4),
 }

@@ -173,6 +173,14 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "dt": Param(1e-4, "simulation step, seconds (the transfer function is evaluated at "
                           "this step)", _num(1e-6, 1e-3), "a number of seconds from 1e-6 "
                                                               "to 1e-3"),
+        "stability": Param("spectral", "what the optimized rule's stability margins bound: "
+                                       "'spectral' (the eigenvalues of each vertex's "
+                                       "Jacobian: the tightest decoder, the better occupancy "
+                                       "in our benchmark, but the solver's answer can jump "
+                                       "between local optima) or 'symmetric' (their "
+                                       "symmetric part: a convex problem with a unique "
+                                       "decoder and more readout noise)",
+                           _choice("spectral", "symmetric"), "one of spectral, symmetric"),
         "cue_drive": Param(False, "hold a constant latent input (cue field) along the "
                                   "code of each condition level's most used state through "
                                   "that level's trials, its one strength calibrated so that "

@@ -351,6 +351,7 @@ def fit_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
                          tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
                          recording=rec, condition=cond if cond else False,
                          train_trials=train, cue_drive=nw.get("cue_drive", False),
+                         stability=nw.get("stability", "spectral"),
                          rng=np.random.default_rng(model_streams(seed)["fit"]),
                          progress=False)
     result.network_fit = nf

@@ -703,7 +703,8 @@ def _network_part(task, binned, original, orig, recording, sf, seed, settings):
                       extra_neurons=nw["extra_neurons"],
                       tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
                       recording=recording, condition=cond if cond else False,
-                      train_trials=train, rng=np.random.default_rng(fit_seed))
+                      train_trials=train, stability=nw.get("stability", "spectral"),
+                      rng=np.random.default_rng(fit_seed))
     surrogates = network_surrogates(net, cp["n_surrogates"],
                                     rng=np.random.default_rng(sur_seed))
     cmp = compare(binned, surrogates, sf, recording=recording,
