@@ -535,8 +535,8 @@ def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0
         problem with one optimum, so the decoder moves continuously with the weights the
         occupancy rounds adjust (with ``"spectral"`` a relative change of 1e-6 in the
         weights moved the decoder by 10% on an 8-state recording); ``"spectral"``
-        (default) gave the better occupancy in ``bench_fit.py`` (median TVD 0.088 against
-        0.117 over 12 recordings, better in 8 of 12).
+        (default) gave the better occupancy in ``bench_fit.py`` (median systematic TVD
+        0.090 against 0.117 over 12 recordings, better in 9 of 12).
 
     Returns
     -------
@@ -2056,10 +2056,14 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
             weights = weights / math.exp(float(np.mean(np.log(weights))))
             if round_ == depth_iterations or np.allclose(weights, wlist[last], rtol=1e-3):
                 break
-            # start from the best decoder so far: the stability constraints make the
-            # problem non-convex, and a cold start can jump to another local optimum
+            # "symmetric": one optimum, so starting from the best decoder so far only
+            # saves solver time. "spectral": from zero, as benchmarked; a warm start
+            # (following one local optimum) was not better on bench_fit (seed 401: TVD
+            # worse on 1 of 5 recordings by 0.10, better on 2 by 0.01-0.02; bench_run
+            # medium: held-out TVD 0.120 against 0.078)
             dec_r = fit_decoder(rule, model_rates, codes, enc, slopes, tau_s=tau_ref,
-                                margin=depth, weights=weights, init=best_dec.decoder,
+                                margin=depth, weights=weights,
+                                init=best_dec.decoder if stability == "symmetric" else None,
                                 stability=stability)
 
     def pick(first_eval, score, strict=False):
