@@ -137,15 +137,19 @@ def test_eigenvalue_gradients_match_finite_differences():
         np.testing.assert_allclose(grads[i].ravel(), num, rtol=1e-4, atol=1e-7)
 
 
+def _random_cube(*, seed, n, k):
+    """Random Gaussian encoder (N x K), the 2^K vertex codes and their patterns."""
+    rng = np.random.default_rng(seed)
+    enc = rng.normal(0, 0.6 / np.sqrt(k), size=(n, k))
+    codes = vertex_codes(k)
+    return n, k, enc, codes, vertex_patterns(enc, codes, bias=1.0, noise=0.5)
+
+
 def test_optimized_decoder_constraints_and_variance():
     # Equalities exact, margins met as inequalities, and the predicted readout variance
     # no larger than the pseudo-inverse decoder's (the latter is one feasible point of
     # the equality constraints).
-    rng = np.random.default_rng(3)
-    n, k = 120, 3
-    enc = rng.normal(0, 0.6 / np.sqrt(k), size=(n, k))
-    codes = vertex_codes(k)
-    pats = vertex_patterns(enc, codes, bias=1.0, noise=0.5)
+    n, k, enc, codes, pats = _random_cube(seed=3, n=120, k=3)
     pinv = decoder_pseudoinverse(pats.rates, codes.T, tau_s=0.05, encoder=enc,
                                  slopes=pats.slopes)
     assert pinv.margins.min() < 0.05  # the minimum-norm decoder is barely stable here
@@ -167,11 +171,7 @@ def test_optimized_decoder_warm_start():
     # so the decoder itself may move; see the symmetric form's test). The same problem with
     # the pseudo-inverse decoder as the start (another feasible point of the equalities)
     # also ends feasible. A decoder of the wrong shape is refused.
-    rng = np.random.default_rng(3)
-    n, k = 120, 3
-    enc = rng.normal(0, 0.6 / np.sqrt(k), size=(n, k))
-    codes = vertex_codes(k)
-    pats = vertex_patterns(enc, codes, bias=1.0, noise=0.5)
+    n, k, enc, codes, pats = _random_cube(seed=3, n=120, k=3)
     kw = dict(tau_s=0.05, encoder=enc, slopes=pats.slopes, margin=0.3)
     opt = decoder_optimized(pats.rates, codes.T, **kw)
     warm = decoder_optimized(pats.rates, codes.T, init=opt.decoder, **kw)
@@ -192,11 +192,8 @@ def test_optimized_symmetric_matches_a_full_space_solve_and_is_continuous():
     # the same objective (1e-4) and decoder (1e-2), and the answer moves continuously:
     # pattern weights changed by 1e-6 move it by < 1e-4 (a convex problem with a strictly
     # convex objective has one optimum; the spectral form moved 24% here).
-    rng = np.random.default_rng(5)
-    n, k, tau, m = 40, 2, 0.05, 0.3
-    enc = rng.normal(0, 0.6 / np.sqrt(k), size=(n, k))
-    codes = vertex_codes(k)
-    pats = vertex_patterns(enc, codes, bias=1.0, noise=0.5)
+    n, k, enc, codes, pats = _random_cube(seed=5, n=40, k=2)
+    tau, m = 0.05, 0.3
     r, x, sl = pats.rates, codes.T.astype(float), pats.slopes
     ours = decoder_optimized(r, x, tau_s=tau, encoder=enc, slopes=sl, margin=m,
                              stability="symmetric")
