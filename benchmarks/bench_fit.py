@@ -27,6 +27,8 @@ Per recording and setting the script prints:
                10%);
 * ``unas``     unassigned fraction of bins, data / first surrogate;
 * ``unst``     vertices that are not stable fixed points; ``spur`` spurious attractors;
+* ``cal``      the fit's own occupancy TVD: chosen calibration evaluation / the same
+               trials simulated again with new noise (the first is selected, so optimistic);
 * ``lat``      the fitted network's latent: fraction of time in a state's orthant /
                near a state's vertex (``y_k x_k > 0.5`` on every axis);
 * ``t_fit``    seconds to fit, wall clock, and ``t_cpu`` CPU seconds (one thread; the
@@ -121,7 +123,7 @@ def main(argv=None):
     print(f"{'N':>4} {'S':>2} {'min':>3} {'seed':>4} {'setting':>8} {'K':>2} {'tau_s':>7} "
           f"{'tvd':>6} {'tvd_mean':>8} {'tvd_exp':>7} {'tvd_ref':>7} {'tvd_proc':>8} "
           f"{'rate_r2':>7} "
-          f"{'dwell':>6} {'unas':>9} {'lat':>9} {'unst':>4} {'spur':>4} {'sims':>4} {'t_fit':>6} "
+          f"{'dwell':>6} {'unas':>9} {'cal':>11} {'lat':>9} {'unst':>4} {'spur':>4} {'sims':>4} {'t_fit':>6} "
           f"{'t_cpu':>6} {'pass':>4}")
     rows = []
     t_all, c_all = time.perf_counter(), time.process_time()
@@ -155,6 +157,7 @@ def main(argv=None):
                   f"{fit.tau_s:7.4f} {m['tvd']:6.3f} {m['tvd_mean']:8.3f} {m['tvd_exp']:7.3f} "
                   f"{m['tvd_ref']:7.3f} {m['tvd_proc']:8.3f} {m['rate_r2']:7.3f} {m['dwell']:6.3f} "
                   f"{m['unas_d']:4.2f}/{m['unas_m']:4.2f} "
+                  f"{fit.occupancy_tvd:5.3f}/{fit.fresh_occupancy_tvd:5.3f} "
                   f"{fit.latent_on_state:4.2f}/{fit.latent_near_state:4.2f} "
                   f"{len(fit.unstable_vertices):>4} "
                   f"{len(fit.spurious_points):>4} {fit.n_simulations:>4} {t_fit:6.1f} "

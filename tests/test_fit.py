@@ -457,15 +457,18 @@ def test_latent_state_use_closed_form():
 def test_fit_reports_where_its_latent_sits(small_fit):
     f = small_fit
     assert 0.0 <= f.latent_near_state <= f.latent_on_state <= 1.0
+    assert 0.0 <= f.fresh_occupancy_tvd <= 1.0
+    assert f.summary_block()["fresh_occupancy_tvd"] == f.fresh_occupancy_tvd
     assert f.latent_use.shape == (f.n_states,)
     assert f.latent_use.sum() == pytest.approx(f.latent_on_state)
     block = f.summary_block()
     assert block["latent_on_state"] == f.latent_on_state
     # model.npz files written before the diagnostic still load (value unknown)
-    d = {k: v for k, v in f.to_arrays().items() if not k.startswith("latent_")}
+    d = {k: v for k, v in f.to_arrays().items()
+         if not k.startswith("latent_") and k != "fresh_occupancy_tvd"}
     g = NetworkFit.from_arrays(d)
     assert np.isnan(g.latent_on_state) and g.latent_use is None
-    assert np.isnan(g.latent_near_state)
+    assert np.isnan(g.latent_near_state) and np.isnan(g.fresh_occupancy_tvd)
     assert len(g.summary_block()["latent_state_use"]) == f.n_states
 
 

@@ -345,6 +345,13 @@ def _model_sections(result, labels, add):
     block = nf.summary_block()
     for note in block.get("notes", []):
         blocks.append(note)
+    fresh = float(getattr(nf, "fresh_occupancy_tvd", float("nan")))
+    if np.isfinite(fresh):
+        blocks.append(f"Occupancy TVD between the fitted network and the training data: "
+                      f"{nf.occupancy_tvd:.3f} at the chosen calibration evaluation (the "
+                      f"least of {nf.n_simulations} simulations on one noise realisation, so "
+                      f"optimistic), {fresh:.3f} when the same trials are simulated again "
+                      "with new noise. The held-out comparison above is the test.")
     on_state = float(getattr(nf, "latent_on_state", float("nan")))
     if np.isfinite(on_state):
         use = ", ".join(f"{t} {100 * u:.0f}%" for t, u in zip(nf.vertex_text, nf.latent_use))
