@@ -123,7 +123,8 @@ def main(argv=None):
     print(f"{'N':>4} {'S':>2} {'min':>3} {'seed':>4} {'setting':>8} {'K':>2} {'tau_s':>7} "
           f"{'tvd':>6} {'tvd_mean':>8} {'tvd_exp':>7} {'tvd_ref':>7} {'tvd_proc':>8} "
           f"{'rate_r2':>7} "
-          f"{'dwell':>6} {'unas':>9} {'cal':>11} {'lat':>9} {'unst':>4} {'spur':>4} {'sims':>4} {'t_fit':>6} "
+          f"{'dwell':>6} {'unas':>9} {'cal':>11} {'lat':>9} {'unst':>4} {'spur':>4} "
+          f"{'sims':>4} {'t_fit':>6} "
           f"{'t_cpu':>6} {'pass':>4}")
     rows = []
     t_all, c_all = time.perf_counter(), time.process_time()

@@ -525,18 +525,24 @@ def _match_axes(found, true):
     return False
 
 
+def _square_truth(*, noise, tau):
+    """A known K = 2 hypercube network of 96 neurons (pseudo-inverse decoder): the network,
+    its vertex codes and vertex patterns."""
+    enc = hypercube_encoder(96, 2, gain=0.4, rng=0)
+    codes = vertex_codes(2)
+    vp = vertex_patterns(enc, codes, bias=0.9, noise=noise)
+    dec = decoder_pseudoinverse(vp.rates, codes.T, tau_s=tau, encoder=enc, slopes=vp.slopes)
+    return LowRankNetwork(enc, dec.decoder, bias=0.9, noise=noise, tau_s=tau), codes, vp
+
+
 def test_network_refitted_from_its_own_output():
     # Our own plumbing check: a K = 2 hypercube network (4 vertices, known E, D, noise),
     # simulated, binned, states fitted, then the network refitted from its own output
     # recovers the vertex codes (up to axis permutation and sign), a stable fixed point at
     # every vertex, the noise (within 35%: network-driven rate fluctuations add ISI
     # variability) and the occupancy (TVD <= 0.12; sampling alone gives about 0.05).
-    n, k, noise, tau = 96, 2, 0.3, 0.01
-    enc = hypercube_encoder(n, k, gain=0.4, rng=0)
-    codes = vertex_codes(k)
-    vp = vertex_patterns(enc, codes, bias=0.9, noise=noise)
-    dec = decoder_pseudoinverse(vp.rates, codes.T, tau_s=tau, encoder=enc, slopes=vp.slopes)
-    true = LowRankNetwork(enc, dec.decoder, bias=0.9, noise=noise, tau_s=tau)
+    noise, tau = 0.3, 0.01
+    true, codes, vp = _square_truth(noise=noise, tau=tau)
     first = np.arange(40) % 4
     res = true.simulate(2.5, n_trials=40, seed=2, y0=codes[first].astype(float))
     rec = res.to_recording(labels={"item": first}, gap=0.5)
@@ -727,12 +733,8 @@ def cued():
     l receive a known constant latent input G_TRUE * x^l for the whole trial, simulated,
     binned and its states fitted (the truth: each item holds its vertex ~80% of the
     time, against ~40% without the field)."""
-    n, k, noise, tau, g_true = 96, 2, 0.3, 0.005, 0.03
-    enc = hypercube_encoder(n, k, gain=0.4, rng=0)
-    codes = vertex_codes(k)
-    vp = vertex_patterns(enc, codes, bias=0.9, noise=noise)
-    dec = decoder_pseudoinverse(vp.rates, codes.T, tau_s=tau, encoder=enc, slopes=vp.slopes)
-    true = LowRankNetwork(enc, dec.decoder, bias=0.9, noise=noise, tau_s=tau)
+    noise, tau, g_true = 0.3, 0.005, 0.03
+    true, codes, vp = _square_truth(noise=noise, tau=tau)
     item = np.arange(48) % 4
     drive = np.repeat((g_true * codes[item])[:, None, :], 25000, axis=1)
     res = true.simulate(2.5, n_trials=48, seed=2, y0=codes[item].astype(float), drive=drive)

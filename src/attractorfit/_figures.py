@@ -360,9 +360,9 @@ def _model_sections(result, labels, add):
                       f"state's vertex {100 * on_state:.0f}% of the time ({use}), and within "
                       "half the way from the orthant's walls to the vertex on every axis "
                       f"{100 * nf.latent_near_state:.0f}% of the time. States in the "
-                      "comparison are "
-                      "decoded from spikes, as for the data, so these numbers say how "
-                      "literally the attractor picture describes the fitted model.")
+                      "comparison are decoded from spikes, as for the data, so these "
+                      "numbers say how literally the attractor picture describes the "
+                      "fitted model.")
     used = np.ones(nf.n_states, bool)
     fig = plots.model_diagnostics(np.asarray(nf.margins, float),
                                   np.abs(nf.decoder_residual * np.ones(nf.n_states)),

@@ -436,41 +436,29 @@ def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin
     tol = 1e-3 * margin + 1e-9  # accept margins within 0.1% of the request
     if not success and nf == 0:
         message = "no freedom left beyond the fixed-point constraints"
-    elif not success and sym and k * nf <= max_slsqp:
-        # convex problem: one solve from the given start (or zero), asking a hair more
-        candidates = []
-        for extra in (0.0, 0.05):
-            want = margin * (1 + extra) + tol / 2
-            zc = _slsqp_solve(j0, b_mu, tau_s, want, norm0=norm0, max_iter=max_iter,
-                              z0=z_start, symmetric=True)
-            gap = float(np.max(_numerical_abscissae(j0, b_mu, zc, tau_s))) + margin
-            candidates.append((f"SLSQP on the symmetric parts, asking {want:.3g}", zc, gap))
-            if gap <= tol:
-                break
-        name, z, gap = min(candidates, key=lambda c: c[2])
-        success = gap <= tol
-        message = (f"margins reached ({name})" if success else
-                   f"margins not reached (best: {name}; {len(candidates)} attempts)")
     elif not success:
-        # The constraint functions are not smooth where eigenvalues meet, and local
-        # solvers tend to stop just short of the boundary: ask for a little more margin
-        # each time until a solution meets the requested one.
+        # The spectral constraint functions are not smooth where eigenvalues meet, and
+        # local solvers tend to stop just short of the boundary: ask for a little more
+        # margin each time until a solution meets the requested one. The symmetric form
+        # is convex: one request, and a second a hair higher if the first falls short.
         candidates = []
-        for extra in (0.0, 0.05, 0.15, 0.4):
+        for extra in ((0.0, 0.05) if sym else (0.0, 0.05, 0.15, 0.4)):
             want = margin * (1 + extra) + tol / 2
-            if k * nf <= max_slsqp:
+            if k * nf > max_slsqp:
+                tries = [("quadratic penalty", None)]
+            elif sym:
+                tries = [("SLSQP on the symmetric parts", dict(symmetric=True))]
+            else:
                 tries = [("SLSQP on the largest eigenvalue", dict(all_eigs=False)),
                          ("SLSQP on all eigenvalues", dict(all_eigs=True))]
-            else:
-                tries = [("quadratic penalty", None)]
             for name, opts in tries:
                 if opts is None:
                     zc = _penalty_solve(j0, b_mu, tau_s, want * 1.02 + 1e-6, norm0=norm0,
-                                        z0=z_start)
+                                        z0=z_start, symmetric=sym)
                 else:
                     zc = _slsqp_solve(j0, b_mu, tau_s, want, norm0=norm0,
                                       max_iter=max_iter, z0=z_start, **opts)
-                gap = float(np.max(_abscissae(j0, b_mu, zc, tau_s))) + margin
+                gap = float(np.max(absc(j0, b_mu, zc, tau_s))) + margin
                 candidates.append((f"{name}, asking {want:.3g}", zc, gap))
                 if gap <= tol:
                     break
@@ -545,8 +533,9 @@ def _slsqp_solve(j0, b_mu, tau_s, margin, *, norm0, max_iter, all_eigs=True, z0=
                  symmetric=False):
     """min ||Z||^2 / norm0 s.t. Re eig(J_mu(Z)) <= -margin, by SLSQP (small problems).
 
-    Every eigenvalue is a constraint (real parts sorted in decreasing order), not only
-    the largest: near the optimum several eigenvalues sit on the boundary, and listing
+    With ``symmetric`` the constraints are the eigenvalues of the symmetric parts
+    (``all_eigs`` unused). Every eigenvalue is a constraint (real parts sorted in
+    decreasing order), not only the largest: near the optimum several eigenvalues sit on the boundary, and listing
     them all keeps the linearised constraints faithful where real parts cross.
     """
     p = len(j0)
@@ -591,12 +580,14 @@ def _slsqp_solve(j0, b_mu, tau_s, margin, *, norm0, max_iter, all_eigs=True, z0=
     return sol.x.reshape(k, nf)
 
 
-def _penalty_solve(j0, b_mu, tau_s, margin, *, norm0, z0=None, max_rounds=12):
+def _penalty_solve(j0, b_mu, tau_s, margin, *, norm0, z0=None, max_rounds=12,
+                   symmetric=False):
     """min ||Z||^2 / norm0 + rho sum_mu sum_i max(0, Re lambda_i(J_mu) + margin)^2.
 
     Quadratic penalty on every eigenvalue (not only the largest, which keeps the penalty
     smooth where real parts cross), L-BFGS inner solves, ``rho`` raised tenfold per
     round until the margins hold (ref. [1] of :func:`decoder_optimized`, ch. 17.1).
+    ``symmetric``: the eigenvalues of the symmetric parts instead.
     """
     p = len(j0)
     k, nf = j0[0].shape[0], b_mu[0].shape[0]
@@ -608,7 +599,8 @@ def _penalty_solve(j0, b_mu, tau_s, margin, *, norm0, z0=None, max_rounds=12):
             val = float(flat @ flat) / norm0
             grad = 2.0 * flat / norm0
             for m in range(p):
-                re, grads = _eig_grads(j0[m], b_mu[m], zz, tau_s)
+                re, grads = (_sym_grads if symmetric else _eig_grads)(j0[m], b_mu[m],
+                                                                      zz, tau_s)
                 for lam_re, g in zip(re, grads):
                     viol = lam_re + margin
                     if viol > 0:
@@ -618,7 +610,8 @@ def _penalty_solve(j0, b_mu, tau_s, margin, *, norm0, z0=None, max_rounds=12):
 
         z = optimize.minimize(fun, z, jac=True, method="L-BFGS-B",
                               options={"maxiter": 1000}).x
-        if np.all(_abscissae(j0, b_mu, z.reshape(k, nf), tau_s) + margin <= 0):
+        absc = _numerical_abscissae if symmetric else _abscissae
+        if np.all(absc(j0, b_mu, z.reshape(k, nf), tau_s) + margin <= 0):
             break
         rho *= 10.0
     return z.reshape(k, nf)

@@ -360,8 +360,8 @@ class LowRankNetwork:
         the trial's generator (no synchronous first volley), no neuron refractory, and
         readout ``y0``. The generator then seeds the trial's fast noise streams (16 SIMD
         lanes plus a rejection stream, :func:`attractorfit.network._random.seed_state`),
-        which supply N standard normals per step (see :mod:`attractorfit.network._simulate` for the
-        step order).
+        which supply N standard normals per step (see
+        :mod:`attractorfit.network._simulate` for the step order).
         """
         duration = check_positive("duration", duration)
         dt = check_positive("dt", dt)

@@ -4,9 +4,9 @@ A call through numpy's ``Generator`` from numba costs about 3.5 ns per normal on
 machines, more than the rest of a neuron's step. One inline xoshiro stream with the
 ziggurat costs about 3 ns: the stream is a serial chain of dependent operations. Sixteen
 independent lanes advanced together run in SIMD registers (0.35 ns per 64-bit output),
-and the ziggurat transform, free of that chain, adds about 1 ns. The stream is seeded per trial from the trial's
-``SeedSequence`` child (see :func:`seed_state`), so results stay reproducible and
-independent across trials.
+and the ziggurat transform, free of that chain, adds about 1 ns. The streams are seeded
+per trial from the trial's ``SeedSequence`` child (see :func:`seed_state`), so results
+stay reproducible and independent across trials.
 
 References
 ----------
@@ -76,10 +76,11 @@ def seed_state(gen: np.random.Generator) -> np.ndarray:
     return state
 
 
-def padded(n: int) -> int:
+@njit(cache=True)
+def padded(n):
     """Length of the buffers :func:`fill_normals` needs for ``n`` normals (a multiple of
-    ``LANES``)."""
-    return -(-int(n) // LANES) * LANES
+    ``LANES``; compiled, so the simulator's kernel calls it too)."""
+    return -(-n // LANES) * LANES
 
 
 @njit(cache=True)
@@ -207,7 +208,7 @@ def normals(state: np.ndarray, n: int) -> np.ndarray:
     """``n`` standard normals from ``state`` (advanced in place), as the simulator draws
     them for ``n`` neurons in one step (every lane advances ``padded(n) / LANES``
     outputs)."""
-    m = padded(n)
+    m = padded(int(n))
     out = np.empty(m)
     fill_normals(state, np.empty(m, dtype=np.uint64), np.empty(m, dtype=np.int64), out,
                  ZIG_K, ZIG_W, ZIG_F)

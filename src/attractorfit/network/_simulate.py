@@ -25,7 +25,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from attractorfit.network._random import LANES, ZIG_F, ZIG_K, ZIG_W, fill_normals
+from attractorfit.network._random import ZIG_F, ZIG_K, ZIG_W, fill_normals, padded
 
 __all__ = ["simulate_trial"]
 
@@ -88,7 +88,7 @@ def simulate_trial(state, encoder_t, decoder_t, bias, threshold, reset, noise_co
     latent = np.empty((n_samples, k))
     z = np.empty(k)
     inp = np.empty(n)
-    n_pad = -(-n // LANES) * LANES
+    n_pad = padded(n)
     xi = np.zeros(n_pad)
     bits = np.empty(n_pad, dtype=np.uint64)
     rejected = np.empty(n_pad, dtype=np.int64)
