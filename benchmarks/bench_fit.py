@@ -74,6 +74,7 @@ SETTINGS = {  # name: options of fit_network (the run's defaults: "opt")
     "opt-spectral": dict(rule="optimized", stability="spectral"),  # session-2 decoder
     "opt-m20": dict(rule="optimized", margin=0.2),   # deeper vertices asked for
     "opt-m40": dict(rule="optimized", margin=0.4),
+    "opt-field": dict(rule="optimized", field_steps=8),   # occupancy field (opt-in)
 }
 TARGETS = dict(tvd=0.05, rate_r2=0.9, dwell=0.10)
 

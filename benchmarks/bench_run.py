@@ -6,7 +6,9 @@ comparison, figures and report), to show how cost grows with units, trials and
 recording length. Recordings come from the semi-Markov switching generator
 (gamma-renewal spiking), not from the network model.
 
-    python benchmarks/bench_run.py [--sizes small,medium,large]
+    python benchmarks/bench_run.py [--sizes small,medium,large] [--field-steps N]
+
+``--field-steps N`` turns on the opt-in occupancy field (``[network] field_steps``).
 """
 
 from __future__ import annotations
@@ -46,11 +48,14 @@ refit = false
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="small,medium,large")
+    ap.add_argument("--field-steps", type=int, default=0)
     args = ap.parse_args()
     tmp = tempfile.mkdtemp(prefix="af-bench-run-")
     cfg = os.path.join(tmp, "bench.toml")
     with open(cfg, "w") as fh:
         fh.write(CONFIG)
+        if args.field_steps:
+            fh.write(f"[network]\nfield_steps = {args.field_steps}\n")
     print(f"{'size':<8}{'units':>6}{'trials':>7}{'minutes':>8}{'spikes':>9}{'wall s':>8}"
           f"{'cpu s':>8}{'peak MB':>9}  states  occupancy_tvd (ref95)  rate_r2")
     for name in args.sizes.split(","):

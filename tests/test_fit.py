@@ -15,6 +15,8 @@ from attractorfit.errors import InputError, InputWarning
 from attractorfit.fit import (
     NetworkFit,
     _allocate_starts,
+    _field_gain,
+    _field_step,
     _level_table,
     _bin_trials,
     _pooled_cv,
@@ -39,7 +41,7 @@ from attractorfit.network import (
 from attractorfit.states import analyse_states
 from attractorfit.synthetic import gamma_spikes, switching_recording
 
-FAST = dict(n_calibration_sims=8, max_evaluations=3, depth_iterations=0)
+FAST = dict(n_calibration_sims=8, max_evaluations=3, depth_iterations=0, field_steps=0)
 
 
 # ----------------------------------------------------------------------------- fixtures
@@ -472,6 +474,72 @@ def test_fit_reports_where_its_latent_sits(small_fit):
     assert len(g.summary_block()["latent_state_use"]) == f.n_states
 
 
+def _softmax(v):
+    e = np.exp(v - v.max())
+    return e / e.sum()
+
+
+def test_field_step_inverts_its_response_model_in_closed_form():
+    # Closed form of the step's own response model: occupancies proportional to
+    # base * exp(g * (x^mu - mean x) . h). Given such a target, one step with the true gain
+    # returns h (the centred codes of 5 states on 4 axes have full column rank), and the
+    # gain measured from that response is g again.
+    codes = np.array([[1, 1, -1, 1], [-1, 1, 1, -1], [1, -1, -1, -1], [-1, -1, 1, 1],
+                      [1, 1, 1, -1]], float)
+    cen = codes - codes.mean(axis=0)
+    base = np.array([0.3, 0.1, 0.25, 0.2, 0.15])
+    h = np.array([0.02, -0.01, 0.015, 0.005])
+    g = 7.0
+    target = _softmax(np.log(base) + g * cen @ h)
+    step = _field_step(codes, target, base, g, eps=0.0, max_step=np.inf)
+    np.testing.assert_allclose(step, h, rtol=1e-10, atol=1e-13)
+    assert _field_gain(codes, step, base, target, 2.0, eps=0.0) == pytest.approx(7.0)
+    # bounds: at most 4x per step, a wrong-way response doubles the gain, a long step
+    # is shortened to max_step in the same direction
+    assert _field_gain(codes, step, base, target, 1.0, eps=0.0) == pytest.approx(4.0)
+    assert _field_gain(codes, step, target, base, 3.0, eps=0.0) == pytest.approx(6.0)
+    short = _field_step(codes, target, base, g, eps=0.0, max_step=0.01)
+    assert np.linalg.norm(short) == pytest.approx(0.01)
+    np.testing.assert_allclose(short / 0.01, h / np.linalg.norm(h), rtol=1e-10)
+
+
+def test_occupancy_field_is_folded_into_the_biases(small):
+    rec, binned, sf = small
+    plain = fit_network(binned, sf, recording=rec, rule="optimized", rng=5, n_calibration_sims=8,
+                        max_evaluations=6, depth_iterations=0, field_steps=0)
+    f = fit_network(binned, sf, recording=rec, rule="optimized", rng=5, n_calibration_sims=8,
+                    max_evaluations=6, depth_iterations=0, field_steps=3, occupancy_tol=0.0)
+    np.testing.assert_array_equal(plain.occupancy_field, np.zeros(plain.rank))
+    h = f.occupancy_field
+    assert h.shape == (f.rank,) and np.any(h != 0)
+    assert np.sum(f.history["round"] == -2) >= 3
+    # the same encoder fit and decoder; the biases carry E h, nothing else changes
+    np.testing.assert_array_equal(f.network.encoder, plain.network.encoder)
+    np.testing.assert_allclose(f.network.bias, plain.network.bias + f.network.encoder @ h,
+                               rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(f.model_rates_hz, plain.model_rates_hz)
+    # the chosen evaluation is no worse than the field's start (it competes)
+    start = int(np.flatnonzero(f.history["round"] == -2)[0])
+    if f.history["dwell_loss"][start] <= np.log1p(0.05):
+        assert f.loss <= f.history["loss"][start] + 1e-12
+    assert any("occupancy field" in n for n in f.notes)
+    assert not any("occupancy field" in n for n in plain.notes)
+    block = f.summary_block()
+    assert block["occupancy_field"] == [float(v) for v in h]
+    assert len(block["fixed_point_shift"]) == f.n_states
+    shift = f.fixed_point_shift
+    assert shift.shape == (f.n_states,)
+    assert np.all(np.isnan(shift) | (shift >= 0))
+    g = NetworkFit.from_arrays(f.to_arrays())
+    np.testing.assert_array_equal(g.occupancy_field, h)
+    np.testing.assert_array_equal(g.fixed_point_shift, shift)
+    # model.npz files written before the field load as "no field, shifts unknown"
+    old = NetworkFit.from_arrays({k: v for k, v in f.to_arrays().items()
+                                  if k not in ("occupancy_field", "fixed_point_shift")})
+    assert old.summary_block()["occupancy_field"] == [0.0] * f.rank
+    assert all(np.isnan(v) for v in old.summary_block()["fixed_point_shift"])
+
+
 def test_stability_option_is_checked(small):
     rec, binned, sf = small
     with pytest.raises(InputError, match="stability"):
@@ -553,7 +621,8 @@ def test_network_refitted_from_its_own_output():
     match = np.argmax(corr, axis=1)
     assert sorted(match.tolist()) == [0, 1, 2, 3]
     f = fit_network(binned, sf, recording=rec, rng=3, tau_s_range=(0.004, 0.1),
-                    n_calibration_sims=20, max_evaluations=5, depth_iterations=0)
+                    n_calibration_sims=20, max_evaluations=5, depth_iterations=0,
+                    field_steps=0)
     assert _match_axes(f.codes, codes[match])
     assert f.unstable_vertices == []
     assert f.noise == pytest.approx(noise, rel=0.35)
@@ -588,7 +657,7 @@ def test_occupancy_rounds_reweight_the_decoder(small):
     # whatever start the rounds' warm start gave the solver (with "spectral" it is not)
     f = fit_network(binned, sf, recording=rec, rule="optimized", rng=5, n_calibration_sims=8,
                     max_evaluations=14, depth_iterations=3, occupancy_tol=0.0,
-                    stability="symmetric")
+                    stability="symmetric", field_steps=0)
     w = f.vertex_weights
     assert w.shape == (3,) and np.all(w > 0)
     assert np.mean(np.log(w)) == pytest.approx(0.0, abs=1e-9)      # geometric mean 1
@@ -745,7 +814,7 @@ def cued():
     match = np.argmax(corr, axis=1)           # fitted state -> true vertex
     f = fit_network(binned, sf, recording=rec, rng=3, tau_s_range=(0.002, 0.1),
                     n_calibration_sims=24, max_evaluations=6, depth_iterations=0,
-                    cue_drive=True)
+                    cue_drive=True, field_steps=0)
     _CUED_RECORDING.append(rec)
     return g_true, match, binned, sf, f
 
@@ -812,7 +881,7 @@ def test_cue_field_fit_is_reproducible(cued):
     _, _, binned, sf, f = cued
     again = fit_network(binned, sf, recording=_CUED_RECORDING[-1], rng=3,
                         tau_s_range=(0.002, 0.1), n_calibration_sims=24, max_evaluations=6,
-                        depth_iterations=0, cue_drive=True)
+                        depth_iterations=0, cue_drive=True, field_steps=0)
     a, b = f.to_arrays(), again.to_arrays()
     assert a.keys() == b.keys() and "cue_field" in a
     for key in a:

@@ -181,6 +181,14 @@ PARAMETERS: dict[str, dict[str, Param]] = {
                                        "symmetric part: a convex problem with a unique "
                                        "decoder and more readout noise)",
                            _choice("spectral", "symmetric"), "one of spectral, symmetric"),
+        "field_steps": Param(0, "steps calibrating an occupancy field (0: none; 8 is a "
+                                "good budget): a constant input along the latent axes, "
+                                "folded into the neurons' biases, that brings the model's "
+                                "state occupancy closer to the data's. Off by default: it "
+                                "moves the fixed points off the states' vertices and can "
+                                "remove some, so the network no longer has an attractor at "
+                                "every state (the report shows how far they moved)",
+                             _num(0, 100, integer=True), "a whole number from 0 to 100"),
         "cue_drive": Param(False, "hold a constant latent input (cue field) along the "
                                   "code of each condition level's most used state through "
                                   "that level's trials, its one strength calibrated so that "

@@ -352,6 +352,7 @@ def fit_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
                          recording=rec, condition=cond if cond else False,
                          train_trials=train, cue_drive=nw.get("cue_drive", False),
                          stability=nw.get("stability", "spectral"),
+                         field_steps=int(nw.get("field_steps", 0)),
                          rng=np.random.default_rng(model_streams(seed)["fit"]),
                          progress=False)
     result.network_fit = nf

@@ -704,6 +704,7 @@ def _network_part(task, binned, original, orig, recording, sf, seed, settings):
                       tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
                       recording=recording, condition=cond if cond else False,
                       train_trials=train, stability=nw.get("stability", "spectral"),
+                      field_steps=int(nw.get("field_steps", 0)),
                       rng=np.random.default_rng(fit_seed))
     surrogates = network_surrogates(net, cp["n_surrogates"],
                                     rng=np.random.default_rng(sur_seed))
