@@ -849,12 +849,20 @@ def _cue_unstable(net, codes, fields, dt, rng):
                                tau_s=net.tau_s, refractory=net.refractory, noise=net.noise)
         fp = fixed_points(moved, codes=codes.astype(float), dt=dt, grid=grid,
                           n_random=0 if net.rank <= 3 else 32, rng=rng)
-        for s, c in enumerate(codes):
-            hit = np.flatnonzero(fp.stable & np.all(fp.codes == c, axis=1))
-            lost[lv, s] = hit.size == 0
-            if hit.size:
-                shift[lv, s] = float(np.min(np.linalg.norm(fp.points[hit] - c, axis=1)))
+        shift[lv] = _orthant_shift(fp, codes)
+        lost[lv] = ~np.isfinite(shift[lv])
     return lost, shift
+
+
+def _orthant_shift(fp, codes) -> np.ndarray:
+    """(S,) distance from each code of the nearest stable fixed point of ``fp`` in the
+    code's orthant; NaN when there is none."""
+    shift = np.full(len(codes), np.nan)
+    for s, c in enumerate(np.asarray(codes)):
+        hit = np.flatnonzero(fp.stable & np.all(fp.codes == c, axis=1))
+        if hit.size:
+            shift[s] = float(np.min(np.linalg.norm(fp.points[hit] - c, axis=1)))
+    return shift
 
 
 def latent_state_use(latents, codes) -> tuple:
@@ -1576,12 +1584,8 @@ def _diagnose(net, codes, dt, rng):
             margins[s] = stability_margin(jacobian_at(net, c.astype(float), dt=dt))
     ratio = np.max(readout_noise_ratio(net, codes, dt=dt), axis=1)
     spur = fp.spurious
-    shift = np.full(codes.shape[0], np.nan)
-    for s, c in enumerate(codes.astype(int)):
-        hit = np.flatnonzero(fp.stable & np.all(fp.codes == c, axis=1))
-        if hit.size:
-            shift[s] = float(np.min(np.linalg.norm(fp.points[hit] - c, axis=1)))
-    return margins, found, ratio, fp.points[spur], fp.codes[spur], shift
+    return (margins, found, ratio, fp.points[spur], fp.codes[spur],
+            _orthant_shift(fp, codes.astype(int)))
 
 
 # ============================================================================ main entry
