@@ -48,12 +48,17 @@ def _state_means_in_latent(trajs, bin_states, n_states):
 
 
 def _trial_spikes(recording, binned, pos):
-    """Spike times per unit (kept units) of analysed trial ``pos``, from its window start."""
+    """Spike times per unit (kept units) of analysed trial ``pos``, from its window start.
+
+    Units are found by id: a surrogate recording may hold only the data's kept units, so
+    positions in the data's recording do not apply to it.
+    """
     t0 = float(binned.window_start[pos])
     t1 = t0 + float(binned.n_valid[pos]) * binned.bin_size
+    where = {u: i for i, u in enumerate(recording.unit_ids)}
     out = []
-    for i in binned.unit_index:
-        t = recording.spike_times[i]
+    for u in binned.unit_ids:
+        t = recording.spike_times[where[u]]
         a, b = np.searchsorted(t, [t0, t1])
         out.append(t[a:b] - t0)
     return out

@@ -515,8 +515,9 @@ def bin_like(recording, like) -> BinnedCounts:
     Returns
     -------
     BinnedCounts
-        ``window_start`` holds the surrogate's own window starts; trial index, labels,
-        window and alignment are the data's.
+        ``window_start`` holds the surrogate's own window starts and ``unit_index`` the
+        units' positions in ``recording`` (a surrogate may hold only the data's kept
+        units); trial index, labels, window and alignment are the data's.
 
     Raises
     ------
@@ -589,7 +590,7 @@ def bin_like(recording, like) -> BinnedCounts:
                          f"bins per trial; expected {n_valid.tolist()[:5]}...")
     return BinnedCounts(counts=counts, n_valid=n_valid.copy(), bin_size=bin_size,
                         unit_ids=list(like.unit_ids),
-                        unit_index=np.asarray(like.unit_index).copy(),
+                        unit_index=np.asarray(idx, dtype=np.int64),
                         trial_index=np.asarray(like.trial_index).copy(),
                         window_start=np.asarray(start, dtype=np.float64).copy(),
                         labels={k: np.asarray(v).copy() for k, v in like.labels.items()},
