@@ -488,3 +488,44 @@ def test_through_the_attractorfit_command(inputs, tmp_path, capsys):
                      str(tmp_path / "o"), "--quiet"]) == 0
     err = capsys.readouterr().err
     assert "task input=bad.npz;states=1 failed: InputError: bad.npz" in err
+
+
+def test_a_sweep_task_fits_as_the_run_fits(monkeypatch):
+    """One mapping from [network] to the fit: a sweep task hands fit_network exactly what
+    the run's model stage hands it (rank and cue field included; both were once dropped)."""
+    from attractorfit import fit, pipeline
+    from attractorfit.config import resolve_config
+    from attractorfit.sweep import _network_part, _settings
+
+    cfg = resolve_config({"analysis": {"bin_size": 0.05, "condition": "item"},
+                          "states": {"max_states": 3, "latent_dims": 2},
+                          "network": {"rule": "pseudoinverse", "rank": 3, "cue_drive": True,
+                                      "extra_neurons": 7, "stability": "symmetric",
+                                      "field_steps": 2, "tau_s_min": 0.02, "dt": 2e-4}})
+    rec, _ = switching_recording(n_units=10, n_states=2, n_trials=12, trial_duration=1.5,
+                                 rng=4, labels={"item": np.array(list("ab") * 6)})
+    res = pipeline.run_states(rec, cfg, seed=1, discreteness=False)
+    seen = []
+
+    class Stop(Exception):
+        pass
+
+    def record(binned, state_fit, **kw):
+        seen.append({k: v for k, v in kw.items()
+                     if k not in ("recording", "train_trials", "rng", "progress",
+                                  "condition")})
+        raise Stop
+
+    monkeypatch.setattr(fit, "fit_network", record)
+    with pytest.raises(Stop):
+        pipeline.fit_model(res, seed=1)
+    b = res.binned
+    task = SweepTask(input="x", n_states=res.state_fit.n_states, dims=2,
+                     rule="pseudoinverse", replicate=0)
+    with pytest.raises(Stop):
+        _network_part(task, b, b, np.arange(b.n_trials), rec, res.state_fit, 1,
+                      _settings(cfg))
+    run_kw, sweep_kw = seen
+    assert run_kw == sweep_kw
+    assert run_kw["rank"] == 3 and run_kw["cue_drive"] is True
+    assert run_kw["extra_neurons"] == 7 and run_kw["tau_s_range"] == (0.02, 0.3)

@@ -325,17 +325,15 @@ def _states(args) -> int:
     res = pipeline.run_states(rec, cfg, seed=seed, n_jobs=args.jobs,
                               progress=_progress_wanted(args), discreteness=not args.no_test)
     pipeline.write_state_outputs(folder, res)
-    from attractorfit._figures import write_figures_and_report
-
-    write_figures_and_report(folder, res, title="attractorfit: discrete states")
     _stages.save_states(folder, res, seed=seed, fresh=True)
+    ok = _write_report(folder, res, _notices(args), title="attractorfit: discrete states")
     if not args.quiet:
         sf = res.state_fit
         print(f"{sf.n_states} states (vertex codes {', '.join(sf.vertex_text)}); "
               f"results in {folder.path}")
         if res.discreteness is not None:
             print(res.discreteness.text())
-    return 0
+    return 0 if ok else 1
 
 
 def _run(args) -> int:
@@ -344,7 +342,65 @@ def _run(args) -> int:
     return _run_recording(rec, cfg, seed, folder, jobs=args.jobs, quiet=args.quiet,
                           progress=not args.quiet, scheduler=args.scheduler,
                           local_cluster=args.local_cluster, resume=args.resume,
-                          input_path=args.path, load_options=_load_options(args))
+                          input_path=args.path, load_options=_load_options(args),
+                          notices=_notices(args))
+
+
+def _write_report(folder, res, notices, *, title="attractorfit report") -> bool:
+    """Figures, tables and report.html, then the run log; False when the report failed.
+
+    The stages' files are written before this is called, so a failure here loses
+    nothing: it is logged with its traceback in run_log.txt, one line says what failed
+    and how to redo only the report, and the command exits 1 (our bug, not the input's).
+    A full disk or a folder that became unwritable is the environment's: exit 2.
+    """
+    import traceback
+
+    from attractorfit import pipeline
+    from attractorfit._figures import write_figures_and_report
+
+    try:
+        write_figures_and_report(folder, res, title=title)
+        ok = True
+    except OSError as exc:
+        _write_log(folder, notices)
+        from attractorfit.errors import InputError
+
+        raise InputError(f"{folder.path}: could not write the figures and report "
+                         f"({exc.strerror or exc}); the finished stages are kept, "
+                         f"'attractorfit report {folder.path}' writes the report") from None
+    except Exception as exc:  # noqa: BLE001 - any bug in the figures must not lose the run
+        pipeline.log.error("figures and report failed:\n%s", traceback.format_exc())
+        print(f"attractorfit: error: the figures and report failed ({type(exc).__name__}: "
+              f"{exc}); the finished stages are kept in {folder.path}, and 'attractorfit "
+              f"report {folder.path}' (or the same run with --resume) redoes only the "
+              "report; details in run_log.txt; this is a bug, please report it",
+              file=sys.stderr)
+        ok = False
+        _remove_stale_report(folder)
+    _write_log(folder, notices)
+    return ok
+
+
+def _notices(args):
+    """The command's NoticeBook (set by the command line; None when called directly)."""
+    return getattr(args, "notices", None)
+
+
+def _remove_stale_report(folder) -> None:
+    """A report.html of an earlier run must not pass for this run's."""
+    import os
+
+    try:
+        os.unlink(folder.file("report.html"))
+    except FileNotFoundError:
+        pass
+
+
+def _write_log(folder, notices) -> None:
+    """run_log.txt: the command's progress messages and warnings (with their counts)."""
+    if notices is not None:
+        folder.write_text("run_log.txt", notices.log_text())
 
 
 def _check_cluster(args) -> None:
@@ -372,11 +428,10 @@ def _record_run(folder, cfg, input_path, load_options, rec) -> None:
 
 def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress, scheduler=None,
                    local_cluster=None, resume=False, input_path=None,
-                   load_options=None) -> int:
+                   load_options=None, notices=None) -> int:
     import time
 
     from attractorfit import _stages, pipeline
-    from attractorfit._figures import write_figures_and_report
 
     from tqdm.auto import tqdm
 
@@ -442,9 +497,11 @@ def _run_recording(rec, cfg, seed, folder, *, jobs, quiet, progress, scheduler=N
         _stages.save_comparison(folder, res)
     step("figures and report")
     pipeline.log.info("writing figures and report")
-    write_figures_and_report(folder, res)
+    ok = _write_report(folder, res, notices)
     bar.update(1)
     bar.close()
+    if not ok:
+        return 1
     if not quiet:
         sf, d, c = res.state_fit, res.discreteness, res.comparison.summary_block()
         print(f"{sf.n_states} states, vertex codes {', '.join(sf.vertex_text)}; "
@@ -493,6 +550,7 @@ def _fit(args) -> int:
     res = _stage_data(args, folder, cfg, "fit")
     pipeline.fit_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet)
     _stages.save_fit(folder, res)
+    _write_log(folder, _notices(args))
     if not args.quiet:
         nf = res.network_fit
         print(f"fitted a rank-{nf.rank} network ({nf.rule} decoder, tau_s "
@@ -515,7 +573,6 @@ def _simulate(args) -> int:
 
 def _compare(args) -> int:
     from attractorfit import _stages, pipeline
-    from attractorfit._figures import write_figures_and_report
 
     folder, cfg, seed = _stage_start(args, "compare")
     _check_cluster(args)
@@ -525,7 +582,8 @@ def _compare(args) -> int:
     pipeline.compare_model(res, seed=seed, n_jobs=args.jobs, progress=not args.quiet)
     _stages.save_surrogate(folder, res, if_missing=True)  # what 'simulate' would write
     _stages.save_comparison(folder, res)
-    write_figures_and_report(folder, res)
+    if not _write_report(folder, res, _notices(args)):
+        return 1
     if not args.quiet:
         _print_comparison(res.comparison.summary_block())
         print(f"report: {folder.file('report.html')}")
@@ -536,7 +594,6 @@ def _report(args) -> int:
     import os
 
     from attractorfit import _stages
-    from attractorfit._figures import write_figures_and_report
 
     folder, cfg, seed = _stage_start(args, "report")
     has_model = os.path.exists(folder.file(_stages.MARKERS["compare"]))
@@ -546,7 +603,8 @@ def _report(args) -> int:
         _stages.restore_comparison(folder, res, command="report")
         _stages.first_surrogate(folder, res, command="report")
         title = "attractorfit report"
-    write_figures_and_report(folder, res, title=title)
+    if not _write_report(folder, res, _notices(args), title=title):
+        return 1
     if not args.quiet:
         print(f"report: {folder.file('report.html')}")
     return 0
@@ -569,7 +627,7 @@ def _demo(args) -> int:
     rec = load(path)
     return _run_recording(rec, cfg, int(cfg["run"]["seed"]), folder, jobs=args.jobs,
                           quiet=args.quiet, progress=not args.quiet, input_path=path,
-                          load_options={})
+                          load_options={}, notices=_notices(args))
 
 
 def _levels(col) -> str:

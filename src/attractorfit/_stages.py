@@ -46,6 +46,7 @@ import os
 import numpy as np
 
 from attractorfit import pipeline
+from attractorfit._notices import fold_surrogate_warnings
 from attractorfit._threads import one_thread
 from attractorfit.errors import InputError
 
@@ -452,5 +453,8 @@ def save_surrogate(folder, result, *, if_missing: bool = False) -> None:
 
 def save_comparison(folder, result) -> None:
     """summary.json ``comparison`` block, then comparison.npz."""
-    _update_summary(folder, {"comparison": result.comparison.summary_block()})
+    block = result.comparison.summary_block()
+    if result.surrogates:  # remarks about our surrogates, not about the data
+        block["surrogate_warnings"] = fold_surrogate_warnings(result.surrogates)
+    _update_summary(folder, {"comparison": block})
     folder.write_npz(MARKERS["compare"], **pack_result(result.comparison))

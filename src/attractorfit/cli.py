@@ -7,9 +7,7 @@ from __future__ import annotations
 
 import argparse
 import sys
-import warnings
-
-from attractorfit.errors import InputError, InputWarning
+from attractorfit.errors import InputError
 
 __all__ = ["main", "build_parser"]
 
@@ -100,10 +98,13 @@ def _main(argv) -> int:
             logger = logging.getLogger("attractorfit")
             logger.addHandler(handler)
             logger.setLevel(logging.INFO)
-        with warnings.catch_warnings():
-            warnings.simplefilter("default", InputWarning)
-            warnings.formatwarning = _format_warning
+        from attractorfit._notices import NoticeBook, capture
+
+        args.notices = NoticeBook()
+        with capture(args.notices, sys.stderr):
             code = int(args.func(args) or 0)
+        for line in args.notices.closing_lines():
+            print(line, file=sys.stderr)
         if _INTERRUPTED:  # pragma: no cover - timing dependent
             print("attractorfit: an interrupt arrived inside a compiled-code callback and was "
                   "lost; the command finished and its outputs are complete", file=sys.stderr)
@@ -151,10 +152,6 @@ def run() -> None:
     if code == 130:
         os._exit(130)
     sys.exit(code)
-
-
-def _format_warning(message, category, filename, lineno, line=None):
-    return f"attractorfit: warning: {message}\n"
 
 
 if __name__ == "__main__":  # pragma: no cover

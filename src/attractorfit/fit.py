@@ -90,6 +90,7 @@ from __future__ import annotations
 
 import math
 import warnings
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -97,7 +98,8 @@ import numpy as np
 from attractorfit.states._segments import _is_missing
 
 from attractorfit._threads import single_threaded
-from attractorfit._validation import check_fraction, check_int, check_positive, check_rng
+from attractorfit._validation import (check_fraction, check_int, check_positive, check_rng,
+                                      collect_input_warnings)
 from attractorfit.binning import BinnedCounts
 from attractorfit.errors import InputError, InputWarning
 from attractorfit.network import (
@@ -115,12 +117,52 @@ from attractorfit.network import (
 )
 from attractorfit.network._transfer import DISCRETE_THRESHOLD_SHIFT
 
-__all__ = ["NetworkFit", "fit_network", "fit_encoder", "fit_decoder", "extend_codes",
+__all__ = ["NetworkFit", "FitOptions", "fit_network", "fit_encoder", "fit_decoder", "extend_codes",
            "centred_rate_r2", "isi_cv_lif", "noise_from_isi_cv", "rescaled_isi_cv",
            "latent_state_use", "RULES"]
 
 #: Decoder rules accepted by :func:`fit_network`.
 RULES = ("pseudoinverse", "optimized", "hebbian")
+
+
+@dataclass(frozen=True)
+class FitOptions:
+    """The configuration's ``[network]`` settings as :func:`fit_network` keywords.
+
+    The one mapping from configuration to the fit: the ``run`` command's model stage
+    and every ``sweep`` task build their fit from it, so the two fit alike.
+
+    Attributes
+    ----------
+    rule, hypercube, rank, extra_neurons, tau_s_range, dt, cue_drive, stability, field_steps
+        As the keywords of :func:`fit_network` (``rank`` 0 in the configuration means
+        None here: the state model's code length).
+    """
+
+    rule: str = "optimized"
+    hypercube: bool = False
+    rank: object = "auto"
+    extra_neurons: int = 0
+    tau_s_range: tuple = (0.01, 0.3)
+    dt: float = 1e-4
+    cue_drive: bool = False
+    stability: str = "spectral"
+    field_steps: int = 0
+
+    @classmethod
+    def from_config(cls, cfg: dict) -> "FitOptions":
+        """From a resolved configuration (its ``[network]`` section)."""
+        nw = cfg["network"]
+        return cls(rule=nw["rule"], hypercube=bool(nw["hypercube"]),
+                   rank=None if nw["rank"] in (0, None) else nw["rank"],
+                   extra_neurons=int(nw["extra_neurons"]),
+                   tau_s_range=(float(nw["tau_s_min"]), float(nw["tau_s_max"])),
+                   dt=float(nw["dt"]), cue_drive=bool(nw["cue_drive"]),
+                   stability=nw["stability"], field_steps=int(nw["field_steps"]))
+
+    def keywords(self) -> dict:
+        """Keyword arguments of :func:`fit_network`."""
+        return dataclasses.asdict(self)
 
 #: Neuron constants of the fitted network (DESIGN.md defaults).
 TAU_M = 0.02
@@ -1318,7 +1360,8 @@ class NetworkFit:
                         metadata={"source": "fitted-network", "dt": self.dt,
                                   "tau_s": self.tau_s, "noise": self.noise,
                                   "rule": self.rule})
-        return rec.validate(min_units=1)
+        with collect_input_warnings([], reemit_input=False):  # kept in rec.warnings
+            return rec.validate(min_units=1)
 
     # ------------------------------------------------------------- reporting
     def summary_block(self) -> dict:

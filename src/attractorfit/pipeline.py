@@ -18,8 +18,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from attractorfit._notices import SurrogateWarning, fold_surrogate_warnings
 from attractorfit._output import atomic_writer, write_csv, write_json
 from attractorfit._threads import one_thread
+from attractorfit._validation import collect_input_warnings
 from attractorfit.config import check_config_for_data, dumps_config, resolve_config
 from attractorfit.errors import InputError, InputWarning
 
@@ -31,7 +33,8 @@ __all__ = ["RunFolder", "RunResult", "run_states", "input_record", "versions",
 #: Files a run folder may hold; a folder holding anything else is not ours to overwrite.
 RUN_FILES = ("summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
              "surrogate.nwb", "report.html", "figures", "tables", "input.json",
-             "state_model.npz", "discreteness.npz", "lab_checks.npz", "comparison.npz")
+             "state_model.npz", "discreteness.npz", "lab_checks.npz", "comparison.npz",
+             "run_log.txt")
 
 
 def versions() -> dict:
@@ -336,23 +339,16 @@ def held_out_trials(result: RunResult, *, seed: int = 0) -> tuple:
 def fit_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
               progress: bool = False) -> RunResult:
     """Fit the network on the training trials (sets ``network_fit`` and ``held_out``)."""
-    from attractorfit.fit import fit_network
+    from attractorfit.fit import FitOptions, fit_network
 
     cfg = result.config
-    nw = cfg["network"]
     b, sf, rec = result.binned, result.state_fit, result.recording
     cond = _condition_column(b, cfg)
     with one_thread():
         train, held = held_out_trials(result, seed=seed)
         _note(progress, "fitting the network")
-        nf = fit_network(b, sf, rule=nw["rule"], hypercube=nw["hypercube"],
-                         rank=None if nw["rank"] in (0, None) else nw["rank"],
-                         extra_neurons=nw["extra_neurons"],
-                         tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
-                         recording=rec, condition=cond if cond else False,
-                         train_trials=train, cue_drive=nw.get("cue_drive", False),
-                         stability=nw.get("stability", "spectral"),
-                         field_steps=int(nw.get("field_steps", 0)),
+        nf = fit_network(b, sf, **FitOptions.from_config(cfg).keywords(), recording=rec,
+                         condition=cond if cond else False, train_trials=train,
                          rng=np.random.default_rng(model_streams(seed)["fit"]),
                          progress=False)
     result.network_fit = nf
@@ -385,6 +381,8 @@ def simulate_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
         else:
             sur = network_surrogates(nf, n, rng=rng, n_jobs=n_jobs)
     result.surrogates = sur
+    for line in fold_surrogate_warnings(sur):
+        warnings.warn(line, SurrogateWarning, stacklevel=2)
     return result
 
 
@@ -465,8 +463,9 @@ def run_lab_checks(result: RunResult, *, seed: int = 0) -> RunResult:
             for f in rc["bin_factors"]:
                 name = {0.5: "bin/2", 2.0: "bin*2"}.get(float(f), f"bin x{float(f):g}")
                 sub = {**cfg, "analysis": {**a, "bin_size": a["bin_size"] * float(f)}}
-                try:
-                    rb = bin_for_analysis(result.recording, sub)
+                try:  # the main binning has already said what these would repeat
+                    with collect_input_warnings([], reemit_input=False):
+                        rb = bin_for_analysis(result.recording, sub)
                 except InputError as exc:
                     log.info("robustness: bin size x%g left out: %s", f, exc)
                     continue

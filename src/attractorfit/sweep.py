@@ -676,6 +676,13 @@ def _state_part(task, binned, orig, latent_dims, seed, settings):
     return analysed, sf, row, detail
 
 
+def sweep_fit_options(settings: dict, task) -> "FitOptions":
+    """The fit of a sweep task: the run's mapping of ``[network]``, with the task's rule."""
+    from attractorfit.fit import FitOptions
+
+    return FitOptions.from_config({"network": {**settings["network"], "rule": task.rule}})
+
+
 def _network_part(task, binned, original, orig, recording, sf, seed, settings):
     """Network fit on training trials; comparison with the held-out trials.
 
@@ -691,7 +698,7 @@ def _network_part(task, binned, original, orig, recording, sf, seed, settings):
 
     if task.n_states < 2:
         return {}, {"network": "not fitted: a network needs at least 2 states"}
-    nw, cp = settings["network"], settings["compare"]
+    cp = settings["compare"]
     split_seed, fit_seed, sur_seed, cmp_seed = key_stream(seed, "network;" + task.key).spawn(4)
     cond = _condition_column(binned, {"analysis": settings["analysis"]})
     # split the original trials, so copies of one trial never sit on both sides
@@ -699,13 +706,9 @@ def _network_part(task, binned, original, orig, recording, sf, seed, settings):
                                    np.random.default_rng(split_seed))
     train = np.flatnonzero(np.isin(orig, train_o))
     held = np.flatnonzero(np.isin(orig, held_o))
-    net = fit_network(binned, sf, rule=task.rule, hypercube=nw["hypercube"],
-                      extra_neurons=nw["extra_neurons"],
-                      tau_s_range=(nw["tau_s_min"], nw["tau_s_max"]), dt=nw["dt"],
+    net = fit_network(binned, sf, **sweep_fit_options(settings, task).keywords(),
                       recording=recording, condition=cond if cond else False,
-                      train_trials=train, stability=nw.get("stability", "spectral"),
-                      field_steps=int(nw.get("field_steps", 0)),
-                      rng=np.random.default_rng(fit_seed))
+                      train_trials=train, rng=np.random.default_rng(fit_seed))
     surrogates = network_surrogates(net, cp["n_surrogates"],
                                     rng=np.random.default_rng(sur_seed))
     cmp = compare(binned, surrogates, sf, recording=recording,
