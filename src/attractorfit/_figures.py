@@ -184,7 +184,7 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
         verts = _state_means_in_latent(lat.trajectories, dec.bin_states, sf.n_states)
         fig = plots.latent_trajectories(lat.trajectories, None, vertices=verts,
                                         vertex_labels=sf.vertex_text,
-                                        n_dims=min(2, lat.n_dims), bin_size=b.bin_size)
+                                        n_dims=2, bin_size=b.bin_size)  # K = 1: vs time
         add(blocks, fig, "latent_trajectories",
             "Latent trajectories (factor analysis of square-root counts) with each state's "
             "mean position marked by its vertex code.")

@@ -100,25 +100,62 @@ class _RateTable:
     A uniform grid of inputs (step 0.002 threshold units; linear interpolation error
     about ``step^2 |phi''| / 8``, below 0.01 Hz) vectorised over neurons and starting
     points; used for flows from many starting points, after which fixed points are
-    polished with the exact transfer function. Falls back to exact evaluation when the
-    tables would be too large.
+    polished with the exact transfer function. The grid points are whole multiples of
+    the step, so a table extended to a wider range (:meth:`cover`) keeps its values and
+    computes only the new cells. Falls back to exact evaluation when the tables would
+    be too large.
     """
 
     def __init__(self, net, dt, lo, hi, step=2e-3, max_cells=2e7):
         params = np.column_stack([net.noise, net.threshold, net.reset])
-        uniq, inv = np.unique(params, axis=0, return_inverse=True)
-        n_grid = int(np.ceil((hi - lo) / step)) + 1
-        self.net, self.dt = net, dt
-        self.exact = len(uniq) * n_grid > max_cells
+        self.uniq, inv = np.unique(params, axis=0, return_inverse=True)
+        self.group = inv.ravel()
+        self.net, self.dt, self.step, self.max_cells = net, dt, step, max_cells
+        self.i_lo, self.i_hi = int(np.floor(lo / step)), int(np.ceil(hi / step))
+        self.exact = self._too_large(self.i_lo, self.i_hi)
+        self.table = None if self.exact else self._compute(self.i_lo, self.i_hi)
+
+    @property
+    def lo(self):
+        return self.i_lo * self.step
+
+    @property
+    def hi(self):
+        return self.i_hi * self.step
+
+    def _too_large(self, i_lo, i_hi):
+        return len(self.uniq) * (i_hi - i_lo + 1) > self.max_cells
+
+    def _compute(self, i0, i1):
+        """Rates at grid cells ``i0..i1`` (inclusive), one row per neuron group."""
+        grid = self.step * np.arange(i0, i1 + 1)
+        out = np.empty((len(self.uniq), grid.size))
+        for g, (noise, thr, reset) in enumerate(self.uniq):
+            out[g] = transfer_rate(grid, noise, tau_m=self.net.tau_m, threshold=thr,
+                                   reset=reset, refractory=self.net.refractory, dt=self.dt)
+        return out
+
+    def cover(self, lo, hi):
+        """Extend the table to hold ``[lo, hi]``; a side that grows grows by at least
+        half the present span, so a flow that keeps widening costs few extensions."""
         if self.exact:
             return
-        self.group = inv.ravel()
-        self.lo, self.hi, self.step = lo, lo + (n_grid - 1) * step, step
-        grid = lo + step * np.arange(n_grid)
-        self.table = np.empty((len(uniq), n_grid))
-        for g, (noise, thr, reset) in enumerate(uniq):
-            self.table[g] = transfer_rate(grid, noise, tau_m=net.tau_m, threshold=thr,
-                                          reset=reset, refractory=net.refractory, dt=dt)
+        need_lo, need_hi = int(np.floor(lo / self.step)), int(np.ceil(hi / self.step))
+        if need_lo >= self.i_lo and need_hi <= self.i_hi:
+            return
+        half = (self.i_hi - self.i_lo) // 2
+        new_lo = min(self.i_lo, need_lo - half) if need_lo < self.i_lo else self.i_lo
+        new_hi = max(self.i_hi, need_hi + half) if need_hi > self.i_hi else self.i_hi
+        if self._too_large(new_lo, new_hi):
+            self.exact, self.table = True, None
+            return
+        parts = [self.table]
+        if new_lo < self.i_lo:
+            parts.insert(0, self._compute(new_lo, self.i_lo - 1))
+        if new_hi > self.i_hi:
+            parts.append(self._compute(self.i_hi + 1, new_hi))
+        self.table = np.hstack(parts)
+        self.i_lo, self.i_hi = new_lo, new_hi
 
     def rates(self, inputs):
         if self.exact:
@@ -164,8 +201,7 @@ def rate_flow(net, starts, *, dt=1e-4, duration=40.0, step=0.1, tol=1e-7):
     for _ in range(int(np.ceil(duration / step))):
         inputs = y @ net.encoder.T + net.bias
         if not table.exact and (inputs.min() < table.lo or inputs.max() > table.hi):
-            table = _RateTable(net, dt, min(table.lo, float(inputs.min()) - 1.0),
-                               max(table.hi, float(inputs.max()) + 1.0))
+            table.cover(float(inputs.min()) - 1.0, float(inputs.max()) + 1.0)
         target = table.rates(inputs) @ gain
         if np.max(np.abs(target - y), initial=0.0) < tol:
             break
