@@ -447,11 +447,15 @@ def test_latent_state_use_closed_form():
     p = 1 / 16
     np.testing.assert_allclose(use, p, atol=5 * np.sqrt(p * (1 - p) / y.shape[0]))
     assert on == pytest.approx(use.sum())
-    # near: |y_k| > 0.5 on all 4 axes in a state's orthant, 3 * (P(y > 0.5))^4 (normal cdf)
-    q = 3 * stats.norm.sf(0.5) ** 4
+    # near: |y_k - x_k| < 0.5 on all 4 axes of one of 3 vertices, 3 * P(0.5 < y < 1.5)^4
+    # (normal cdf; the three boxes do not overlap)
+    q = 3 * (stats.norm.cdf(1.5) - stats.norm.cdf(0.5)) ** 4
     assert near == pytest.approx(q, abs=5 * np.sqrt(q * (1 - q) / y.shape[0]))
     on, use, near = latent_state_use([0.7 * codes[[0, 0, 2, 1]]], codes)
     assert on == 1.0 and near == 1.0 and use.tolist() == [0.5, 0.25, 0.25]
+    # a latent that ran away beyond the cube is in a state's orthant, near no vertex
+    on, use, near = latent_state_use([40.0 * codes[[0, 1]]], codes)
+    assert on == 1.0 and near == 0.0
     on, use, near = latent_state_use([np.zeros((0, 4))], codes)
     assert np.isnan(on) and np.isnan(near)
 

@@ -377,7 +377,7 @@ def _model_sections(result, labels, add):
         blocks.append(f"Latent readout of the fitted network (sampled every 10 ms over "
                       f"{nf.n_calibration_trials} simulated trials): in the orthant of a "
                       f"state's vertex {100 * on_state:.0f}% of the time ({use}), and within "
-                      "half the way from the orthant's walls to the vertex on every axis "
+                      "0.5 of the vertex on every axis (a quarter of the vertex spacing) "
                       f"{100 * nf.latent_near_state:.0f}% of the time. States in the "
                       "comparison are decoded from spikes, as for the data, so these "
                       "numbers say how literally the attractor picture describes the "

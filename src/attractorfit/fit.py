@@ -924,8 +924,10 @@ def latent_state_use(latents, codes) -> tuple:
     use : ndarray (S,)
         Fraction of samples in each state's orthant (sums to ``on_state``).
     near_state : float
-        Fraction of samples within half the way from the orthant's walls to a state's
-        vertex on every axis (``y_k x_k > 0.5`` for all k): held near the vertex.
+        Fraction of samples within 0.5 of a state's vertex on every axis
+        (``|y_k - x_k| < 0.5`` for all k, a quarter of the vertex spacing): held near the
+        vertex. A latent that runs away far beyond the cube is in an orthant but near no
+        vertex (it once counted as near: ``y_k x_k > 0.5`` had no upper bound).
 
     Notes
     -----
@@ -941,7 +943,7 @@ def latent_state_use(latents, codes) -> tuple:
     signs = np.where(y >= 0, 1, -1)
     match = np.all(signs[:, None, :] == codes[None, :, :], axis=2)
     use = match.mean(axis=0)
-    near = np.any(np.all(y[:, None, :] * codes[None, :, :] > 0.5, axis=2), axis=1)
+    near = np.any(np.all(np.abs(y[:, None, :] - codes[None, :, :]) < 0.5, axis=2), axis=1)
     return float(use.sum()), use, float(near.mean())
 
 
