@@ -14,9 +14,9 @@ References
 .. [2] Fox, E. B., Sudderth, E. B., Jordan, M. I. & Willsky, A. S. (2011). A sticky
    HDP-HMM with application to speaker diarization. Annals of Applied Statistics
    5:1020-1056.
-.. [3] Li and La Camera (2025). PLOS ONE 20:e0325979 (sticky prior and BIC for
-   choosing the number of states of spike-count HMMs; cited from the project's issue,
-   title not verified).
+.. [3] Li T, La Camera G (2025) A sticky Poisson hidden Markov model for solving the
+   problem of over-segmentation and rapid state switching in cortical datasets. PLOS ONE
+   20(7): e0325979.
 """
 
 from __future__ import annotations
