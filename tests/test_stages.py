@@ -278,6 +278,14 @@ def test_state_fit_round_trip_with_given_states_and_mapping():
     assert again.choice is None and not again.conditions["item"].mapping_inferred
     assert again.label_to_state == sf.label_to_state
     assert dumps_json(again.summary_block()) == dumps_json(sf.summary_block())
+    # state_model.npz files written before the keys were renamed (hmm_startprob,
+    # hmm_transmat) still load, with the same model
+    arrays = sf.to_arrays()
+    arrays["hmm_startprob"] = arrays.pop("hmm_initial_probs")
+    arrays["hmm_transmat"] = arrays.pop("hmm_transition_probs")
+    old = StateFit.from_arrays(arrays, binned)
+    assert np.array_equal(old.model.transition_probs_, sf.model.transition_probs_)
+    assert np.array_equal(old.model.initial_probs_, sf.model.initial_probs_)
     sur = pipeline.analysed_counts(bin_spikes(_recording(6), bin_size=0.05))
     a, b = sf.decode(sur), again.decode(sur)
     assert np.array_equal(a.occupancy, b.occupancy) and a.segments.rows() == b.segments.rows()
