@@ -55,6 +55,9 @@ def test_run_folder_contract(run_folder):
     names = {p.name for p in run_folder.iterdir()}
     assert {"summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
             "surrogate.nwb", "report.html", "figures", "tables"} <= names
+    # one row per state in tables/, not named like the run folder's states.csv (segments)
+    assert (run_folder / "tables" / "state_summary.csv").is_file()
+    assert not (run_folder / "tables" / "states.csv").exists()
     s = json.loads((run_folder / "summary.json").read_text())
     assert s["recording"]["n_units"] == 16 and s["recording"]["n_trials"] == 24
     st = s["states"]
