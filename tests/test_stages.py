@@ -96,6 +96,23 @@ def test_stage_commands_give_the_bytes_of_one_run(full, tmp_path):
     assert "Model vs data" in html and "not proof" in html
 
 
+def test_run_folders_of_earlier_versions_keep_their_extra_checks(full, tmp_path):
+    # the extra checks (decoding, robustness, drift) were kept in lab_checks.npz before
+    assert (full / "extra_checks.npz").is_file() and not (full / "lab_checks.npz").exists()
+    old = tmp_path / "old"
+    shutil.copytree(full, old)
+    (old / "extra_checks.npz").rename(old / "lab_checks.npz")
+    shutil.rmtree(old / "tables")
+    assert _main("report", old, "--quiet") == 0
+    for name in ("robustness.csv", "state_drift.csv", "unit_drift.csv",
+                 "end_state_decoding.csv"):
+        assert (old / "tables" / name).read_bytes() == \
+            (full / "tables" / name).read_bytes(), name
+    # a fresh start deletes the old file too (it is a stage file of an earlier run)
+    _stages.remove_stage_files(_stages.open_run_folder(old, command="t")[0])
+    assert not (old / "lab_checks.npz").exists()
+
+
 def test_resume_after_an_interrupted_run_skips_finished_stages(full, tmp_path, monkeypatch,
                                                               caplog):
     d = full.parent

@@ -31,7 +31,8 @@ __all__ = ["RunFolder", "RunResult", "run_states", "input_record", "versions",
 #: Files a run folder may hold; a folder holding anything else is not ours to overwrite.
 RUN_FILES = ("summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
              "surrogate.nwb", "report.html", "figures", "tables", "input.json",
-             "state_model.npz", "discreteness.npz", "lab_checks.npz", "comparison.npz")
+             "state_model.npz", "discreteness.npz", "extra_checks.npz", "comparison.npz",
+             "lab_checks.npz")  # the last: extra_checks.npz of earlier versions
 
 
 def versions() -> dict:
