@@ -96,12 +96,16 @@ def test_stage_commands_give_the_bytes_of_one_run(full, tmp_path):
     assert "Model vs data" in html and "not proof" in html
 
 
-def test_run_folders_of_earlier_versions_keep_their_extra_checks(full, tmp_path):
+def test_run_folders_of_earlier_versions_still_work(full, tmp_path):
     # the extra checks (decoding, robustness, drift) were kept in lab_checks.npz before
     assert (full / "extra_checks.npz").is_file() and not (full / "lab_checks.npz").exists()
     old = tmp_path / "old"
     shutil.copytree(full, old)
     (old / "extra_checks.npz").rename(old / "lab_checks.npz")
+    # and its config.toml named network.cue_field cue_drive
+    text = (old / "config.toml").read_text()
+    assert "\ncue_field = false\n" in text
+    (old / "config.toml").write_text(text.replace("\ncue_field =", "\ncue_drive ="))
     shutil.rmtree(old / "tables")
     assert _main("report", old, "--quiet") == 0
     for name in ("robustness.csv", "state_drift.csv", "unit_drift.csv",

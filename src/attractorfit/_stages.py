@@ -192,7 +192,7 @@ def open_run_folder(path, *, command: str):
                          "'attractorfit states' or 'attractorfit run'")
     folder = _ExistingFolder(path)
     need(folder, "config.toml", "states", command)
-    cfg = load_config(folder.file("config.toml"))
+    cfg = load_config(folder.file("config.toml"), old_names=True)
     return folder, cfg, int(cfg["run"]["seed"])
 
 
@@ -332,7 +332,7 @@ def check_resume(folder, cfg: dict, seed: int, recording) -> bool:
     cfg_path = os.path.join(folder.path, "config.toml")
     if not os.path.exists(cfg_path):
         return False
-    old = load_config(cfg_path)
+    old = load_config(cfg_path, old_names=True)
     old_seed = int(old["run"]["seed"])
     if old_seed != int(seed):
         raise InputError(f"--resume: seed {seed} differs from seed {old_seed} of the run in "

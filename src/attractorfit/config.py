@@ -189,7 +189,7 @@ PARAMETERS: dict[str, dict[str, Param]] = {
                                 "remove some, so the network no longer has an attractor at "
                                 "every state (the report shows how far they moved)",
                              _num(0, 100, integer=True), "a whole number from 0 to 100"),
-        "cue_drive": Param(False, "hold a constant latent input (cue field) along the "
+        "cue_field": Param(False, "hold a constant latent input (cue field) along the "
                                   "code of each condition level's most used state through "
                                   "that level's trials, its one strength calibrated so that "
                                   "the model's per-level state use matches the data's (needs "
@@ -232,6 +232,12 @@ PARAMETERS: dict[str, dict[str, Param]] = {
 }
 
 
+#: Settings that were renamed: (section, old key) -> new key. A user's file naming an old
+#: key gets an error naming the new one; a run folder's own config.toml, written by an
+#: earlier version, is read with the new names (``old_names=True``).
+RENAMED: dict[tuple[str, str], str] = {("network", "cue_drive"): "cue_field"}
+
+
 def default_config() -> dict:
     """The default configuration as a nested dict (a fresh copy)."""
     return {s: {k: _copy(p.default) for k, p in sec.items()} for s, sec in PARAMETERS.items()}
@@ -241,8 +247,13 @@ def _copy(v):
     return list(v) if isinstance(v, list) else v
 
 
-def resolve_config(overrides: dict | None, *, source: str = "configuration") -> dict:
-    """Defaults updated with ``overrides``; unknown keys and bad values raise InputError."""
+def resolve_config(overrides: dict | None, *, source: str = "configuration",
+                   old_names: bool = False) -> dict:
+    """Defaults updated with ``overrides``; unknown keys and bad values raise InputError.
+
+    ``old_names=True`` reads the keys of :data:`RENAMED` under their new names (for run
+    folders of earlier versions); otherwise an old key is an error naming the new one.
+    """
     cfg = default_config()
     for section, values in (overrides or {}).items():
         if section not in PARAMETERS:
@@ -251,6 +262,7 @@ def resolve_config(overrides: dict | None, *, source: str = "configuration") -> 
         if not isinstance(values, dict):
             raise InputError(f"{source}: [{section}] must be a table of settings")
         for key, value in values.items():
+            key = _current_name(section, key, source, old_names)
             p = PARAMETERS[section].get(key)
             if p is None:
                 raise InputError(f"{source}: unknown setting {section}.{key}; expected one of "
@@ -272,6 +284,16 @@ def resolve_config(overrides: dict | None, *, source: str = "configuration") -> 
         raise InputError(f"{source}: states.n_states = 1; expected 0 (choose) or at least 2 "
                          "states")
     return cfg
+
+
+def _current_name(section: str, key: str, source: str, old_names: bool) -> str:
+    new = RENAMED.get((section, key))
+    if new is None:
+        return key
+    if old_names:
+        return new
+    raise InputError(f"{source}: {section}.{key} was renamed; write {section}.{new} "
+                     "instead (same meaning and values)")
 
 
 def check_config_for_data(cfg: dict, *, n_units: int, source: str = "configuration") -> None:
@@ -302,8 +324,10 @@ def check_config_for_data(cfg: dict, *, n_units: int, source: str = "configurati
                          "units analysed (or 0 for the state model's code length)")
 
 
-def load_config(path) -> dict:
+def load_config(path, *, old_names: bool = False) -> dict:
     """Read a TOML file and resolve it against the defaults.
+
+    ``old_names``: see :func:`resolve_config` (True for a run folder's own config.toml).
 
     Raises
     ------
@@ -320,7 +344,7 @@ def load_config(path) -> dict:
         raise InputError(f"{path}: cannot read the configuration ({exc})") from None
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{path}: not valid TOML ({exc})") from None
-    return resolve_config(data, source=os.path.basename(path))
+    return resolve_config(data, source=os.path.basename(path), old_names=old_names)
 
 
 def _toml_value(v) -> str:
