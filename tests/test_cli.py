@@ -53,6 +53,7 @@ def test_inspect_and_defaults(small, capsys):
     code, out, _ = _run(["inspect", small / "spikes.csv", "--trials", small / "trials.csv",
                          "--json"], capsys)
     assert code == 0 and '"n_units": 12' in out
+    assert '"isi_under_1p5ms": ' in out and "1.5ms" not in out  # plain JSON keys
     code, out, _ = _run(["defaults"], capsys)
     assert code == 0 and "[analysis]" in out and "bin_size" in out
 

@@ -74,6 +74,28 @@ def test_run_folder_contract(run_folder):
     assert s["input"]["sha256"] and s["seed"] == 1 and "numpy" in s["versions"]
 
 
+def _keys(obj):
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            yield k
+            yield from _keys(v)
+    elif isinstance(obj, list):
+        for v in obj:
+            yield from _keys(v)
+
+
+def test_json_keys_are_plain_words(run_folder):
+    # keys are read by other tools with dotted paths or as identifiers: no dots or
+    # operators (the robustness settings were once "bin/2", "bin*2", "states+1")
+    summary = json.loads((run_folder / "summary.json").read_text())
+    assert {"chosen", "bin_halved", "bin_doubled", "states_minus_1", "states_plus_1",
+            "threshold_low", "threshold_high"} == set(summary["robustness"])
+    for name in ("summary.json", "input.json"):
+        keys = set(_keys(json.loads((run_folder / name).read_text())))
+        bad = sorted(k for k in keys if set(k) & set(".*/<>=+"))
+        assert not bad, (name, bad)
+
+
 def test_states_csv_rows(run_folder):
     with open(run_folder / "states.csv", newline="") as fh:
         rows = list(csv.DictReader(fh))

@@ -264,7 +264,7 @@ def _inspect(args) -> int:
         "trial_columns": {c: _levels(rec.trials[c]) for c in rec.label_columns},
         "units": [
             {"unit": u, "n_spikes": int(n), "rate_hz": r, "isi_cv": cv, "fano": f,
-             "isi_under_1.5ms": c}
+             "isi_under_1p5ms": c}
             for u, n, r, cv, f, c in zip(s.unit_ids, s.n_spikes, s.rate_hz, s.isi_cv,
                                          s.fano, s.contamination)],
         "warnings": list(rec.warnings),
@@ -286,7 +286,7 @@ def _inspect(args) -> int:
     out.write("\n unit          spikes   rate_Hz   ISI_CV   Fano   ISI<1.5ms\n")
     for row in info["units"]:
         out.write(f" {row['unit']:<12} {row['n_spikes']:>7} {row['rate_hz']:>9.2f} "
-                  f"{row['isi_cv']:>8.2f} {row['fano']:>6.2f} {row['isi_under_1.5ms']:>10.2%}\n")
+                  f"{row['isi_cv']:>8.2f} {row['fano']:>6.2f} {row['isi_under_1p5ms']:>10.2%}\n")
     if rec.warnings:
         out.write("\nwarnings\n")
         for w in rec.warnings:

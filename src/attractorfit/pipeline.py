@@ -464,7 +464,8 @@ def run_lab_checks(result: RunResult, *, seed: int = 0) -> RunResult:
             a = cfg["analysis"]
             rebinned = {}
             for f in rc["bin_factors"]:
-                name = {0.5: "bin/2", 2.0: "bin*2"}.get(float(f), f"bin x{float(f):g}")
+                name = {0.5: "bin_halved", 2.0: "bin_doubled"}.get(
+                    float(f), f"bin_times_{float(f):g}".replace(".", "p"))
                 sub = {**cfg, "analysis": {**a, "bin_size": a["bin_size"] * float(f)}}
                 try:
                     rb = bin_for_analysis(result.recording, sub)
