@@ -53,6 +53,16 @@ def _window(v):
         len(v) == 2 and all(_num()(x) for x in v) and v[1] > v[0]))
 
 
+def _unit_selection(v):
+    """{column = [values]} with text or number values (a single value allowed)."""
+    def ok(x):
+        return isinstance(x, (str, int, float)) and not isinstance(x, bool)
+    return isinstance(v, dict) and all(
+        isinstance(k, str) and k and (ok(x) or (isinstance(x, list) and x
+                                                  and all(ok(y) for y in x)))
+        for k, x in v.items())
+
+
 PARAMETERS: dict[str, dict[str, Param]] = {
     "analysis": {
         "bin_size": Param(0.05, "width of the count bins, seconds", _num(0, 10, lo_open=True),
@@ -71,6 +81,27 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "continuous_window_s": Param(10.0, "window length standing in for trials when the "
                                            "recording has none, seconds",
                                      _num(0, lo_open=True), "a number > 0"),
+    },
+    "units": {
+        "keep": Param({}, "units to analyse, by their metadata (the units table of an NWB "
+                          "file, the cluster labels of a sorter folder as column 'group'; "
+                          "'attractorfit inspect' lists the columns and values): "
+                          "{unit_type = [\"SU\"]} keeps the units whose unit_type is SU; "
+                          "with several columns a unit must match each; values compare "
+                          "as text, ignoring case. The others are left out before binning "
+                          "(summary.json recording.units_left_out says which). Empty: "
+                          "every unit. Command line: --units COLUMN=VALUE[,VALUE]",
+                      _unit_selection, "a table {column = [values]} of text or numbers"),
+        "multi_unit_column": Param("auto", "unit metadata column that marks multi-units: "
+                                           "a unit whose value there is mu, mua, multi or "
+                                           "multi-unit (any case; spaces, hyphens and "
+                                           "underscores ignored) is a multi-unit, named in "
+                                           "the ISI caution of the comparison; 'auto': the "
+                                           "first of unit_type, type, quality, group, "
+                                           "label, KSLabel, classification, then any other "
+                                           "text column, holding such a value; '': none",
+                                   lambda v: isinstance(v, str),
+                                   "a column name, 'auto' or ''"),
     },
     "states": {
         "n_states": Param(0, "number of states; 0 chooses it from the data",
@@ -244,6 +275,8 @@ def default_config() -> dict:
 
 
 def _copy(v):
+    if isinstance(v, dict):
+        return {k: _copy(x) for k, x in v.items()}
     return list(v) if isinstance(v, list) else v
 
 
@@ -356,7 +389,13 @@ def _toml_value(v) -> str:
         return repr(v)
     if isinstance(v, list):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + "}"
     return str(v)
+
+
+def _toml_key(k: str) -> str:
+    return k if k and all(c.isalnum() or c in "_-" for c in k) else _toml_value(str(k))
 
 
 def dumps_config(cfg: dict | None = None, *, comments: bool = True) -> str:
