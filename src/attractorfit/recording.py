@@ -315,7 +315,7 @@ class Recording:
                 out[col].update(min=float(np.min(values)), max=float(np.max(values)))
         return out
 
-    def match_units(self, keep: dict, *, option: str = "units.keep") -> np.ndarray:
+    def match_units(self, keep: dict, *, option: str = "units.keep (--units)") -> np.ndarray:
         """Boolean mask of the units whose metadata matches ``keep``.
 
         Parameters
