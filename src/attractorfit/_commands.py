@@ -12,9 +12,11 @@ def register(sub) -> None:
         "inspect", help="summarise a recording: units, rates, variability, trials, warnings",
         description="Load a recording and print, per unit, the spike count, mean rate, "
                     "ISI coefficient of variation, Fano factor of whole-trial counts and "
-                    "the fraction of inter-spike intervals under 1.5 ms; per recording, "
-                    "its duration, trials and label levels, and any warnings about the "
-                    "input. Nothing is written.")
+                    "the fraction of inter-spike intervals under 1.5 ms and its metadata "
+                    "(units-table columns such as a single/multi-unit type or a site); per "
+                    "recording, its duration, trials and label levels, the unit metadata "
+                    "columns with their value counts, the multi-units, and any warnings "
+                    "about the input. Nothing is written.")
     _add_load_options(p)
     p.add_argument("--json", action="store_true",
                    help="print one JSON document instead of plain text")
