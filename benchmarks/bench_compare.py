@@ -55,7 +55,7 @@ def run_scenarios(n_datasets):
             "same": dict(rates_hz=rates),
             "dwell": dict(rates_hz=rates, mean_dwell_s=0.4 / 3),
             "rates": dict(rates_hz=other),
-            "occupancy": dict(rates_hz=rates, transmat=[[0, 1, 1], [4, 0, 1], [4, 1, 0]]),
+            "occupancy": dict(rates_hz=rates, switch_weights=[[0, 1, 1], [4, 0, 1], [4, 1, 0]]),
         }
         for key, kw in variants.items():
             model = [switching_counts(seed=10_000 * (seed + 1) + 100 * len(key) + b,

@@ -1,7 +1,7 @@
 """Cue field on or off: model-vs-data statistics on the demo and on switching recordings.
 
 Runs the whole states + model pipeline (``pipeline.run_states`` without the
-discreteness test, then ``pipeline.run_model``) with ``network.cue_drive`` false and
+discreteness test, then ``pipeline.run_model``) with ``network.cue_field`` false and
 true, and prints the held-out comparison statistics that the cue field touches
 (``condition_tvd[label]`` and its ref95, occupancy TVD, rate R^2), the number of
 statistics judged consistent, the fitted strength and the fit's wall and CPU time.
@@ -30,7 +30,7 @@ from attractorfit.synthetic import switching_recording
 
 def run(rec, cfg, seed, cue):
     cfg = copy.deepcopy(cfg)
-    cfg["network"]["cue_drive"] = cue
+    cfg["network"]["cue_field"] = cue
     res = pipeline.run_states(rec, cfg, seed=seed, discreteness=False)
     t, c = time.time(), time.process_time()
     pipeline.run_model(res, seed=seed)

@@ -55,7 +55,7 @@ def main():
     print(f"data: {X.shape[0]} bins x {N} units, {S} states, {n_trials} sequences")
 
     ours = PoissonHMM(S, init="given", n_restarts=1, max_iter=1)
-    ours.startprob_, ours.transmat_, ours.rates_ = start, trans, rates0
+    ours.initial_probs_, ours.transition_probs_, ours.rates_ = start, trans, rates0
     ref = hmm.PoissonHMM(n_components=S, n_iter=1, init_params="", params="stl",
                          implementation="log")
     ref.startprob_, ref.transmat_, ref.lambdas_ = start, trans, rates0
@@ -78,7 +78,7 @@ def main():
 
     def em_ours():
         m = PoissonHMM(S, init="given", n_restarts=1, max_iter=1, tol=1e-300)
-        m.startprob_, m.transmat_, m.rates_ = start, trans, rates0
+        m.initial_probs_, m.transition_probs_, m.rates_ = start, trans, rates0
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)
             m.fit(seqs)

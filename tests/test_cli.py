@@ -53,6 +53,7 @@ def test_inspect_and_defaults(small, capsys):
     code, out, _ = _run(["inspect", small / "spikes.csv", "--trials", small / "trials.csv",
                          "--json"], capsys)
     assert code == 0 and '"n_units": 12' in out
+    assert '"isi_under_1p5ms": ' in out and "1.5ms" not in out  # plain JSON keys
     code, out, _ = _run(["defaults"], capsys)
     assert code == 0 and "[analysis]" in out and "bin_size" in out
 
@@ -71,6 +72,16 @@ def test_bad_usage_exits_2_with_one_line(small, tmp_path, capsys, args, match):
     assert code == 2
     lines = [ln for ln in err.splitlines() if ln.strip()]
     assert len(lines) == 1 and match in lines[0] and "Traceback" not in err
+
+
+def test_renamed_config_key_exits_2_naming_the_new_key(small, tmp_path, capsys):
+    (tmp_path / "old.toml").write_text("[network]\ncue_drive = false\n")
+    code, out, err = _run(["states", small / "rec.nwb", "--config", tmp_path / "old.toml",
+                           "--out", tmp_path / "o"], capsys)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and "Traceback" not in err
+    assert "old.toml: network.cue_drive was renamed; write network.cue_field" in lines[0]
+    assert not (tmp_path / "o").exists()
 
 
 def test_refuses_input_folder_and_non_empty_folder(small, tmp_path, capsys):

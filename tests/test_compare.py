@@ -163,7 +163,7 @@ def test_different_process_is_flagged(world, change):
         flagged = ["rate_r2"]
     else:                          # state 0 entered far more often than the others
         tm = [[0, 1, 1], [8, 0, 1], [8, 1, 0]]
-        model = [switching_counts(rates, seed=400 + i, transmat=tm) for i in range(20)]
+        model = [switching_counts(rates, seed=400 + i, switch_weights=tm) for i in range(20)]
         flagged = ["occupancy_tvd"]
     c = quiet_compare(data, model, fit, refit=False, n_boot=50, rng=2)
     for name in flagged:

@@ -39,6 +39,19 @@ def test_bad_config(tmp_path, text, match):
         load_config(p)
 
 
+def test_renamed_key_names_the_new_one(tmp_path):
+    p = tmp_path / "old.toml"
+    p.write_text("[network]\ncue_drive = true\n")
+    with pytest.raises(InputError, match=r"^old.toml: network.cue_drive was renamed; write "
+                                         r"network.cue_field instead"):
+        load_config(p)
+    # a run folder's own config.toml written by an earlier version reads with the new name
+    assert load_config(p, old_names=True)["network"]["cue_field"] is True
+    assert "cue_drive" not in load_config(p, old_names=True)["network"]
+    with pytest.raises(InputError, match=r"network.cue_field = 3; expected true or false"):
+        resolve_config({"network": {"cue_drive": 3}}, old_names=True)
+
+
 def test_missing_file(tmp_path):
     with pytest.raises(InputError, match="not found"):
         load_config(tmp_path / "absent.toml")

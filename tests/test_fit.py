@@ -818,7 +818,7 @@ def cued():
     match = np.argmax(corr, axis=1)           # fitted state -> true vertex
     f = fit_network(binned, sf, recording=rec, rng=3, tau_s_range=(0.002, 0.1),
                     n_calibration_sims=24, max_evaluations=6, depth_iterations=0,
-                    cue_drive=True, field_steps=0)
+                    cue_field=True, field_steps=0)
     _CUED_RECORDING.append(rec)
     return g_true, match, binned, sf, f
 
@@ -843,7 +843,7 @@ def test_cue_field_recovered_from_a_network_with_a_known_field(cued):
     np.testing.assert_array_equal(f.cue_field[4], 0.0)
     assert abs(f.cue_model_use - f.cue_target_use) <= 0.05
     assert f.cue_unstable.shape == (4, 4)
-    block = f.summary_block()["cue_drive"]
+    block = f.summary_block()["cue_field"]
     assert block["strength"] == f.cue_strength
 
 
@@ -877,7 +877,7 @@ def test_cue_field_round_trip_and_old_files_load(cued):
            and key != "condition_tvd"}
     h = NetworkFit.from_arrays(old)
     assert h.cue_field is None and h.cue_strength == 0.0
-    assert "cue_drive" not in h.summary_block()
+    assert "cue_field" not in h.summary_block()
     h.simulate_counts(n_trials=2, rng=0)
 
 
@@ -885,7 +885,7 @@ def test_cue_field_fit_is_reproducible(cued):
     _, _, binned, sf, f = cued
     again = fit_network(binned, sf, recording=_CUED_RECORDING[-1], rng=3,
                         tau_s_range=(0.002, 0.1), n_calibration_sims=24, max_evaluations=6,
-                        depth_iterations=0, cue_drive=True, field_steps=0)
+                        depth_iterations=0, cue_field=True, field_steps=0)
     a, b = f.to_arrays(), again.to_arrays()
     assert a.keys() == b.keys() and "cue_field" in a
     for key in a:

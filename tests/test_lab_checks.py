@@ -42,8 +42,8 @@ def test_run_states_fills_the_lab_checks(result):
     assert {"item", "outcome"} <= set(result.end_state)
     assert 0 < result.end_state["item"].p_value <= 1
     names = [s.name for s in result.robustness.settings]
-    assert names[0] == "chosen" and {"bin/2", "bin*2", "threshold-low",
-                                     "threshold-high"} <= set(names)
+    assert names[0] == "chosen" and {"bin_halved", "bin_doubled", "threshold_low",
+                                     "threshold_high"} <= set(names)
     assert result.unit_drift.rho.shape == (result.binned.n_units,)
     assert result.state_drift.stratified_by == "item"
     assert result.state_drift.counts.shape == (3, result.state_fit.n_states)

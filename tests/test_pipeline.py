@@ -55,6 +55,9 @@ def test_run_folder_contract(run_folder):
     names = {p.name for p in run_folder.iterdir()}
     assert {"summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
             "surrogate.nwb", "report.html", "figures", "tables"} <= names
+    # one row per state in tables/, not named like the run folder's states.csv (segments)
+    assert (run_folder / "tables" / "state_summary.csv").is_file()
+    assert not (run_folder / "tables" / "states.csv").exists()
     s = json.loads((run_folder / "summary.json").read_text())
     assert s["recording"]["n_units"] == 16 and s["recording"]["n_trials"] == 24
     st = s["states"]
@@ -69,6 +72,28 @@ def test_run_folder_contract(run_folder):
     for key in ("occupancy_tvd", "occupancy_tvd_ref95", "rate_r2"):
         assert key in s["comparison"]
     assert s["input"]["sha256"] and s["seed"] == 1 and "numpy" in s["versions"]
+
+
+def _keys(obj):
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            yield k
+            yield from _keys(v)
+    elif isinstance(obj, list):
+        for v in obj:
+            yield from _keys(v)
+
+
+def test_json_keys_are_plain_words(run_folder):
+    # keys are read by other tools with dotted paths or as identifiers: no dots or
+    # operators (the robustness settings were once "bin/2", "bin*2", "states+1")
+    summary = json.loads((run_folder / "summary.json").read_text())
+    assert {"chosen", "bin_halved", "bin_doubled", "states_minus_1", "states_plus_1",
+            "threshold_low", "threshold_high"} == set(summary["robustness"])
+    for name in ("summary.json", "input.json"):
+        keys = set(_keys(json.loads((run_folder / name).read_text())))
+        bad = sorted(k for k in keys if set(k) & set(".*/<>=+"))
+        assert not bad, (name, bad)
 
 
 def test_states_csv_rows(run_folder):

@@ -17,7 +17,8 @@ BUILDERS = {
         list("abcde"), np.full(5, 0.5), [np.full(9, 0.4)] * 5, np.full(5, 0.3),
         [0.1, np.nan, 0.5, 0.2, 1.0], ylabel="cross-validated accuracy"),
     "robustness": lambda: P.robustness_panel(
-        ["chosen", "states-1", "bin/2"], [[0.5, 0.3, 0.2], [0.6, np.nan, 0.4], [0.5, 0.3, 0.2]],
+        ["chosen", "states_minus_1", "bin_halved"],
+        [[0.5, 0.3, 0.2], [0.6, np.nan, 0.4], [0.5, 0.3, 0.2]],
         [[1.0, 0.5, 0.2], [1.2, np.nan, 0.3], [0.9, 0.5, 0.2]],
         {"unassigned": [0.01, 0.02, 0.03], "agreement": [1.0, 0.7, 0.95]},
         state_labels=["LL", "HL", "LH"]),

@@ -44,7 +44,7 @@ def _build(path, figure_files, **kw):
             FigureBlock(png, caption="Occupancy " + HOSTILE, name=HOSTILE),
             FigureBlock(svg, caption="Same figure as SVG"),
             FigureBlock(_small_figure(), caption="A figure object", dpi=50),
-            TableBlock("states", ["state", "vertex", "occupancy"],
+            TableBlock("state_summary", ["state", "vertex", "occupancy"],
                        [[0, "LL", 0.5], [1, HOSTILE, 1 / 3], [2, "LH", float("nan")]],
                        caption="States"),
             Verdict("Inline verdict", "consistent", None, "Fine.", {}),
@@ -111,8 +111,9 @@ def test_report_caution_count_without_model_caution(tmp_path, figure_files):
 
 def test_tables_written_as_csv(tmp_path, figure_files):
     files = _build(tmp_path / "report.html", figure_files, tables_dir=tmp_path / "t")
-    assert sorted(os.path.basename(p) for p in files.tables) == ["states.csv", "unit_rates.csv"]
-    with open(tmp_path / "t" / "states.csv", newline="", encoding="utf-8") as fh:
+    assert sorted(os.path.basename(p) for p in files.tables) == ["state_summary.csv",
+                                                                "unit_rates.csv"]
+    with open(tmp_path / "t" / "state_summary.csv", newline="", encoding="utf-8") as fh:
         rows = list(csv.reader(fh))
     assert rows[0] == ["state", "vertex", "occupancy"]
     assert rows[2] == ["1", HOSTILE, format_float(1 / 3)] and rows[2][2] == "0.3333333333"
@@ -160,7 +161,8 @@ def test_display_width_from_file_metadata(tmp_path):
     (dict(sections=["text"]), "expected Section objects"),
     (dict(tables=[("t", [], [])]), "tables: expected a dict"),
     (dict(tables={"t": ["a"]}), r"tables\['t'\]: expected \(header, rows\)"),
-    (dict(tables={"states": (["a"], [[1]])}), "'states' is used by more than one"),
+    (dict(tables={"state_summary": (["a"], [[1]])}),
+     "'state_summary' is used by more than one"),
 ])
 def test_bad_report_input_raises(tmp_path, figure_files, kw, match):
     with pytest.raises(InputError, match=match):

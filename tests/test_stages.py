@@ -96,6 +96,27 @@ def test_stage_commands_give_the_bytes_of_one_run(full, tmp_path):
     assert "Model vs data" in html and "not proof" in html
 
 
+def test_run_folders_of_earlier_versions_still_work(full, tmp_path):
+    # the extra checks (decoding, robustness, drift) were kept in lab_checks.npz before
+    assert (full / "extra_checks.npz").is_file() and not (full / "lab_checks.npz").exists()
+    old = tmp_path / "old"
+    shutil.copytree(full, old)
+    (old / "extra_checks.npz").rename(old / "lab_checks.npz")
+    # and its config.toml named network.cue_field cue_drive
+    text = (old / "config.toml").read_text()
+    assert "\ncue_field = false\n" in text
+    (old / "config.toml").write_text(text.replace("\ncue_field =", "\ncue_drive ="))
+    shutil.rmtree(old / "tables")
+    assert _main("report", old, "--quiet") == 0
+    for name in ("robustness.csv", "state_drift.csv", "unit_drift.csv",
+                 "end_state_decoding.csv"):
+        assert (old / "tables" / name).read_bytes() == \
+            (full / "tables" / name).read_bytes(), name
+    # a fresh start deletes the old file too (it is a stage file of an earlier run)
+    _stages.remove_stage_files(_stages.open_run_folder(old, command="t")[0])
+    assert not (old / "lab_checks.npz").exists()
+
+
 def test_resume_after_an_interrupted_run_skips_finished_stages(full, tmp_path, monkeypatch,
                                                               caplog):
     d = full.parent
@@ -278,6 +299,14 @@ def test_state_fit_round_trip_with_given_states_and_mapping():
     assert again.choice is None and not again.conditions["item"].mapping_inferred
     assert again.label_to_state == sf.label_to_state
     assert dumps_json(again.summary_block()) == dumps_json(sf.summary_block())
+    # state_model.npz files written before the keys were renamed (hmm_startprob,
+    # hmm_transmat) still load, with the same model
+    arrays = sf.to_arrays()
+    arrays["hmm_startprob"] = arrays.pop("hmm_initial_probs")
+    arrays["hmm_transmat"] = arrays.pop("hmm_transition_probs")
+    old = StateFit.from_arrays(arrays, binned)
+    assert np.array_equal(old.model.transition_probs_, sf.model.transition_probs_)
+    assert np.array_equal(old.model.initial_probs_, sf.model.initial_probs_)
     sur = pipeline.analysed_counts(bin_spikes(_recording(6), bin_size=0.05))
     a, b = sf.decode(sur), again.decode(sur)
     assert np.array_equal(a.occupancy, b.occupancy) and a.segments.rows() == b.segments.rows()

@@ -499,7 +499,7 @@ def test_a_sweep_task_fits_as_the_run_fits(monkeypatch):
 
     cfg = resolve_config({"analysis": {"bin_size": 0.05, "condition": "item"},
                           "states": {"max_states": 3, "latent_dims": 2},
-                          "network": {"rule": "pseudoinverse", "rank": 3, "cue_drive": True,
+                          "network": {"rule": "pseudoinverse", "rank": 3, "cue_field": True,
                                       "extra_neurons": 7, "stability": "symmetric",
                                       "field_steps": 2, "tau_s_min": 0.02, "dt": 2e-4}})
     rec, _ = switching_recording(n_units=10, n_states=2, n_trials=12, trial_duration=1.5,
@@ -527,5 +527,5 @@ def test_a_sweep_task_fits_as_the_run_fits(monkeypatch):
                       _settings(cfg))
     run_kw, sweep_kw = seen
     assert run_kw == sweep_kw
-    assert run_kw["rank"] == 3 and run_kw["cue_drive"] is True
+    assert run_kw["rank"] == 3 and run_kw["cue_field"] is True
     assert run_kw["extra_neurons"] == 7 and run_kw["tau_s_range"] == (0.02, 0.3)

@@ -12,9 +12,11 @@ def register(sub) -> None:
         "inspect", help="summarise a recording: units, rates, variability, trials, warnings",
         description="Load a recording and print, per unit, the spike count, mean rate, "
                     "ISI coefficient of variation, Fano factor of whole-trial counts and "
-                    "the fraction of inter-spike intervals under 1.5 ms; per recording, "
-                    "its duration, trials and label levels, and any warnings about the "
-                    "input. Nothing is written.")
+                    "the fraction of inter-spike intervals under 1.5 ms and its metadata "
+                    "(units-table columns such as a single/multi-unit type or a site); per "
+                    "recording, its duration, trials and label levels, the unit metadata "
+                    "columns with their value counts, the multi-units, and any warnings "
+                    "about the input. Nothing is written.")
     _add_load_options(p)
     p.add_argument("--json", action="store_true",
                    help="print one JSON document instead of plain text")
@@ -174,6 +176,11 @@ def _add_load_options(p) -> None:
                         "params.py does not give it")
     p.add_argument("--good-only", action="store_true",
                    help="sorter folders: keep only units labelled good")
+    p.add_argument("--units", action="append", metavar="COLUMN=VALUE[,VALUE]",
+                   help="analyse only the units whose metadata column COLUMN (see "
+                        "'inspect') has one of the values, e.g. --units unit_type=SU; "
+                        "repeat for several columns (a unit must match each); sets "
+                        "[units] keep of the configuration for that column")
 
 
 def _add_run_options(p) -> None:
@@ -203,6 +210,7 @@ def _resolve(args):
 
     cfg = load_config(args.config) if args.config else resolve_config(None)
     _apply_seed_and_jobs(args, cfg)
+    cfg["units"]["keep"] = {**cfg["units"]["keep"], **unit_selection(args)}
     out = args.out
     if out is None:
         stem = os.path.splitext(os.path.basename(os.path.normpath(args.path)))[0]
@@ -224,6 +232,22 @@ def _apply_seed_and_jobs(args, cfg) -> None:
 
 def _progress_wanted(args) -> bool:
     return not args.quiet and sys.stderr.isatty()
+
+
+def unit_selection(args) -> dict:
+    """``--units COLUMN=VALUE[,VALUE]`` options as ``{column: [values]}``."""
+    from attractorfit.errors import InputError
+
+    keep: dict = {}
+    for item in getattr(args, "units", None) or []:
+        column, sep, values = item.partition("=")
+        wanted = [v.strip() for v in values.split(",") if v.strip()]
+        if not sep or not column.strip() or not wanted:
+            raise InputError(f"--units: {item!r}; expected COLUMN=VALUE[,VALUE], e.g. "
+                             "unit_type=SU")
+        keep.setdefault(column.strip(), [])
+        keep[column.strip()] += [v for v in wanted if v not in keep[column.strip()]]
+    return keep
 
 
 def load_from_args(args):
@@ -254,7 +278,11 @@ def _inspect(args) -> int:
     from attractorfit.stats import unit_summary
 
     rec = load_from_args(args)
+    n_all, keep = rec.n_units, unit_selection(args)
+    if keep:
+        rec = rec.select_units(rec.match_units(keep, option="--units"))
     s = unit_summary(rec)
+    multi_column, multi = rec.multi_units()
     info = {
         "source": rec.source,
         "n_units": rec.n_units,
@@ -262,11 +290,15 @@ def _inspect(args) -> int:
         "duration_s": rec.duration,
         "n_trials": rec.n_trials,
         "trial_columns": {c: _levels(rec.trials[c]) for c in rec.label_columns},
+        "unit_columns": rec.unit_info_counts(),
+        "units_selected": {"keep": keep, "n_units": rec.n_units, "of": n_all} if keep
+        else None,
+        "multi_units": {"column": multi_column, "units": multi},
         "units": [
             {"unit": u, "n_spikes": int(n), "rate_hz": r, "isi_cv": cv, "fano": f,
-             "isi_under_1.5ms": c}
-            for u, n, r, cv, f, c in zip(s.unit_ids, s.n_spikes, s.rate_hz, s.isi_cv,
-                                         s.fano, s.contamination)],
+             "isi_under_1p5ms": c, "metadata": rec.unit_metadata(k)}
+            for k, (u, n, r, cv, f, c) in enumerate(zip(
+                s.unit_ids, s.n_spikes, s.rate_hz, s.isi_cv, s.fano, s.contamination))],
         "warnings": list(rec.warnings),
     }
     if args.json:
@@ -283,15 +315,43 @@ def _inspect(args) -> int:
             out.write(f"  {c:<12}{lv}\n")
     else:
         out.write("trials      none (will be analysed as one continuous epoch)\n")
-    out.write("\n unit          spikes   rate_Hz   ISI_CV   Fano   ISI<1.5ms\n")
+    _write_unit_columns(out, info)
+    cols = list(rec.unit_info)
+    out.write(("\n unit          spikes   rate_Hz   ISI_CV   Fano   ISI<1.5ms"
+               + "".join(f"  {c[:10]:<10}" for c in cols)).rstrip() + "\n")
     for row in info["units"]:
-        out.write(f" {row['unit']:<12} {row['n_spikes']:>7} {row['rate_hz']:>9.2f} "
-                  f"{row['isi_cv']:>8.2f} {row['fano']:>6.2f} {row['isi_under_1.5ms']:>10.2%}\n")
+        line = (f" {row['unit']:<12} {row['n_spikes']:>7} {row['rate_hz']:>9.2f} "
+                f"{row['isi_cv']:>8.2f} {row['fano']:>6.2f} {row['isi_under_1p5ms']:>10.2%}"
+                + "".join(f"  {str(row['metadata'][c])[:10]:<10}" for c in cols))
+        out.write(line.rstrip() + "\n")
     if rec.warnings:
         out.write("\nwarnings\n")
         for w in rec.warnings:
             out.write(f"  - {w}\n")
     return 0
+
+
+def _write_unit_columns(out, info) -> None:
+    """The unit metadata columns with their value counts, the selection, multi-units."""
+    sel = info["units_selected"]
+    if sel:
+        rule = "; ".join(f"{c} in {v}" for c, v in sel["keep"].items())
+        out.write(f"selected    {sel['n_units']} of {sel['of']} units ({rule})\n")
+    if not info["unit_columns"]:
+        out.write("unit columns none\n")
+        return
+    out.write("unit columns\n")
+    for c, counts in info["unit_columns"].items():
+        if "distinct" in counts:
+            text = f"{counts['distinct']} distinct values" + (
+                f", {counts['min']:g} to {counts['max']:g}" if "min" in counts else "")
+        else:
+            text = ", ".join(f"{v or repr('')} ({n})" for v, n in counts.items())
+        out.write(f"  {c:<12}{text}\n")
+    mu = info["multi_units"]
+    if mu["column"]:
+        out.write(f"multi-units {len(mu['units'])} by {mu['column']} (flagged in the ISI "
+                  "comparison)\n")
 
 
 def _defaults(args) -> int:

@@ -230,9 +230,10 @@ def write_figures_and_report(folder, result, *, title="attractorfit report") -> 
         verdicts.extend(v)
     sections.extend(_lab_sections(result, labels, add))
 
-    tables = {"states": (["state", "vertex", "occupancy", "mean_dwell_s"],
-                         [[s, t, float(o), float(m)] for s, (t, o, m) in
-                          enumerate(zip(sf.vertex_text, dec.occupancy, dec.mean_dwell_s))])}
+    tables = {"state_summary": (["state", "vertex", "occupancy", "mean_dwell_s"],
+                                [[s, t, float(o), float(m)] for s, (t, o, m) in
+                                 enumerate(zip(sf.vertex_text, dec.occupancy,
+                                               dec.mean_dwell_s))])}
     if cmp_ is not None:
         tables.update(_comparison_tables(cmp_))
     if sf.choice is not None:

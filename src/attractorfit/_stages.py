@@ -12,7 +12,7 @@ stage     files                                                  marker
 ========  =====================================================  =================
 states    states.csv, posteriors.npz, summary.json (``states``,  state_model.npz
           ``discreteness``, lab checks), discreteness.npz,
-          lab_checks.npz, state_model.npz
+          extra_checks.npz, state_model.npz
 fit       summary.json (``model``), model.npz                    model.npz
 simulate  surrogate.nwb (the first fitted-network surrogate)     surrogate.nwb
 compare   summary.json (``comparison``), comparison.npz,         comparison.npz
@@ -30,7 +30,8 @@ which recomputes the data's decoding from the stored model); the network from
 ``model.npz``. ``compare`` regenerates the fitted-network surrogates from
 ``model.npz`` with the recorded seed and the same streams as ``run`` (surrogates are
 not stored: one NWB file each would be large), so its numbers equal those of ``run``.
-``discreteness.npz``, ``lab_checks.npz`` (end-state decoding, robustness panel, drift)
+``discreteness.npz``, ``extra_checks.npz`` (end-state decoding, robustness panel, drift;
+``lab_checks.npz`` in folders of earlier versions, still read)
 and ``comparison.npz`` hold the result objects as plain arrays
 plus a JSON layout (``__layout__``) of their fields: no pickles.
 """
@@ -65,9 +66,13 @@ MARKERS = {"states": "state_model.npz", "fit": "model.npz", "simulate": "surroga
 #: The summary.json block each stage adds.
 BLOCKS = {"states": "states", "fit": "model", "compare": "comparison"}
 #: Stage files removed when a run starts afresh (--force), so none is taken for current.
-STAGE_FILES = ("state_model.npz", "discreteness.npz", "lab_checks.npz", "model.npz",
-               "surrogate.nwb", "comparison.npz")
-#: RunResult attributes filled by pipeline.run_lab_checks, kept in lab_checks.npz.
+#: The checks beside the state model (end-state decoding, robustness panel, drift).
+EXTRA_CHECKS_FILE = "extra_checks.npz"
+#: Its name in run folders of earlier versions (read if the new one is absent).
+OLD_EXTRA_CHECKS_FILE = "lab_checks.npz"
+STAGE_FILES = ("state_model.npz", "discreteness.npz", EXTRA_CHECKS_FILE,
+               OLD_EXTRA_CHECKS_FILE, "model.npz", "surrogate.nwb", "comparison.npz")
+#: RunResult attributes filled by pipeline.run_lab_checks, kept in EXTRA_CHECKS_FILE.
 LAB_FIELDS = ("end_state", "robustness", "unit_drift", "state_drift")
 INPUT_FILE = "input.json"
 
@@ -188,7 +193,7 @@ def open_run_folder(path, *, command: str):
                          "'attractorfit states' or 'attractorfit run'")
     folder = _ExistingFolder(path)
     need(folder, "config.toml", "states", command)
-    cfg = load_config(folder.file("config.toml"))
+    cfg = load_config(folder.file("config.toml"), old_names=True)
     return folder, cfg, int(cfg["run"]["seed"])
 
 
@@ -328,7 +333,7 @@ def check_resume(folder, cfg: dict, seed: int, recording) -> bool:
     cfg_path = os.path.join(folder.path, "config.toml")
     if not os.path.exists(cfg_path):
         return False
-    old = load_config(cfg_path)
+    old = load_config(cfg_path, old_names=True)
     old_seed = int(old["run"]["seed"])
     if old_seed != int(seed):
         raise InputError(f"--resume: seed {seed} differs from seed {old_seed} of the run in "
@@ -373,9 +378,11 @@ def restore_states(folder, recording, cfg: dict, *, need_discreteness: bool = Fa
         res.state_fit = StateFit.from_arrays(_load_npz(folder, MARKERS["states"]), binned)
     if os.path.exists(folder.file("discreteness.npz")):
         res.discreteness = unpack_result(_load_npz(folder, "discreteness.npz"))
-    if os.path.exists(folder.file("lab_checks.npz")):
-        for name, value in unpack_result(_load_npz(folder, "lab_checks.npz")).items():
-            setattr(res, name, value)
+    for checks in (EXTRA_CHECKS_FILE, OLD_EXTRA_CHECKS_FILE):
+        if os.path.exists(folder.file(checks)):
+            for name, value in unpack_result(_load_npz(folder, checks)).items():
+                setattr(res, name, value)
+            break
     return res
 
 
@@ -432,7 +439,7 @@ def save_states(folder, result, *, seed: int, fresh: bool) -> None:
         folder.write_npz("discreteness.npz", **pack_result(result.discreteness))
     lab = {k: getattr(result, k, None) for k in LAB_FIELDS}
     if any(v is not None for v in lab.values()):
-        folder.write_npz("lab_checks.npz", **pack_result(lab))
+        folder.write_npz(EXTRA_CHECKS_FILE, **pack_result(lab))
     folder.write_npz(MARKERS["states"], **result.state_fit.to_arrays())
 
 

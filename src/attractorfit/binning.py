@@ -58,6 +58,10 @@ class BinnedCounts:
         Trials-table column the window is relative to (``None``: trial start).
     pseudo_trials : bool
         True when the recording had no trials and fixed-length windows stand in.
+    left_out : dict of str to list
+        Units of the recording left out, by reason: ``selection`` (not matched by the
+        ``units`` selection), ``silent`` (no spike in the windows), ``below_min_rate``;
+        only reasons that left a unit out appear.
     """
 
     counts: np.ndarray
@@ -71,6 +75,7 @@ class BinnedCounts:
     window: tuple = (None, None)
     align: str | None = None
     pseudo_trials: bool = False
+    left_out: dict = field(default_factory=dict)
 
     @property
     def n_trials(self) -> int:
@@ -141,7 +146,8 @@ class BinnedCounts:
             unit_ids=list(self.unit_ids), unit_index=self.unit_index.copy(),
             trial_index=self.trial_index[idx], window_start=self.window_start[idx],
             labels={k: v[idx] for k, v in self.labels.items()}, window=self.window,
-            align=self.align, pseudo_trials=self.pseudo_trials)
+            align=self.align, pseudo_trials=self.pseudo_trials,
+            left_out={k: list(v) for k, v in self.left_out.items()})
 
 
 def analysis_windows(recording: Recording, *, window=(None, None), align=None,
@@ -207,7 +213,7 @@ def analysis_windows(recording: Recording, *, window=(None, None), align=None,
 
 def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, None),
                align=None, min_rate_hz: float = 0.0, continuous_window_s: float = 10.0,
-               drop_silent: bool = True) -> BinnedCounts:
+               drop_silent: bool = True, units=None) -> BinnedCounts:
     """Count spikes of each unit in bins of each trial's analysis window.
 
     Parameters
@@ -231,6 +237,10 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
         unit like the data); the default drops them as described above.
     continuous_window_s : float
         Window length standing in for trials when there are none.
+    units : dict of str to list, optional
+        Unit selection by metadata (:meth:`Recording.match_units`, e.g.
+        ``{"unit_type": ["SU"]}``): the other units are left out like silent ones
+        (absent from ``unit_ids``, listed in ``left_out["selection"]``).
 
     Returns
     -------
@@ -239,8 +249,9 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
     Raises
     ------
     InputError
-        Non-positive bin size, a window shorter than one bin, or fewer than two units
-        left after dropping silent and slow units.
+        Non-positive bin size, a window shorter than one bin, a selection naming a
+        column or value the recording's units do not have, fewer than two units
+        selected, or fewer than two units left after dropping silent and slow units.
 
     Notes
     -----
@@ -250,6 +261,7 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
     """
     bin_size = check_positive("bin_size", bin_size)
     min_rate_hz = check_nonnegative("min_rate_hz", min_rate_hz)
+    selected = _selected_units(recording, units)
     start, stop, tidx, pseudo = analysis_windows(
         recording, window=window, align=align, continuous_window_s=continuous_window_s)
     n_valid = np.floor((stop - start) / bin_size + 1e-9).astype(np.int64)
@@ -279,9 +291,9 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
     if not pseudo:
         labels = {c: recording.trials[c][tidx] for c in recording.label_columns}
     rate = counts.sum(axis=(0, 1), dtype=np.float64) / (n_valid.sum() * bin_size)
-    silent = (rate == 0) if drop_silent else np.zeros(n_units, dtype=bool)
-    slow = ~silent & (rate < min_rate_hz)
-    keep = ~silent & ~slow
+    silent = selected & ((rate == 0) if drop_silent else np.zeros(n_units, dtype=bool))
+    slow = selected & ~silent & (rate < min_rate_hz)
+    keep = selected & ~silent & ~slow
     later = "left out of the state model and of every later stage"
     if silent.any():
         first = recording.unit_ids[int(np.flatnonzero(silent)[0])]
@@ -293,10 +305,11 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
                    f"{min_rate_hz:g} Hz inside the analysis windows (first: "
                    f"{recording.unit_ids[i]!r}, {rate[i]:.3g} Hz); {later}")
     if keep.sum() < 2:
-        raise InputError(f"min_rate_hz: only {int(keep.sum())} of {n_units} unit(s) fire "
-                         f"inside the analysis windows at {min_rate_hz:g} Hz or more "
-                         f"({int(silent.sum())} without any spike there); expected at least "
-                         "2 units")
+        what = "unit(s)" if selected.all() else "selected unit(s)"
+        raise InputError(f"min_rate_hz: only {int(keep.sum())} of {int(selected.sum())} "
+                         f"{what} fire inside the analysis windows at {min_rate_hz:g} Hz or "
+                         f"more ({int(silent.sum())} without any spike there); expected at "
+                         "least 2 units")
     unit_index = np.flatnonzero(keep)
     if not keep.all():
         counts = np.ascontiguousarray(counts[:, :, keep])
@@ -304,4 +317,27 @@ def bin_spikes(recording: Recording, *, bin_size: float = 0.02, window=(None, No
                         unit_ids=[recording.unit_ids[i] for i in unit_index],
                         unit_index=unit_index, trial_index=np.asarray(tidx),
                         window_start=start, labels=labels, window=tuple(window),
-                        align=align, pseudo_trials=pseudo)
+                        align=align, pseudo_trials=pseudo,
+                        left_out=_left_out(recording.unit_ids, ~selected, silent, slow))
+
+
+def _selected_units(recording: Recording, units) -> np.ndarray:
+    """Mask of the units a metadata selection keeps (all without one); two at least."""
+    if not units:
+        return np.ones(recording.n_units, dtype=bool)
+    if not isinstance(units, dict):
+        raise InputError(f"units: expected a dict {{column: [values]}}, got {units!r}")
+    mask = recording.match_units(units)
+    if mask.sum() < 2:
+        rule = "; ".join(f"{c} in {v if isinstance(v, list) else [v]}"
+                         for c, v in units.items())
+        raise InputError(f"units.keep: {rule} keeps {int(mask.sum())} of "
+                         f"{recording.n_units} units of {recording.source}; expected at "
+                         "least 2")
+    return mask
+
+
+def _left_out(unit_ids, *masks) -> dict:
+    names = ("selection", "silent", "below_min_rate")
+    return {n: [unit_ids[i] for i in np.flatnonzero(m)] for n, m in zip(names, masks)
+            if np.any(m)}

@@ -145,6 +145,9 @@ MIN_SURROGATES = 20
 CAUTION = ("These are statistical statements about models of the recording, not proof "
            "about the brain.")
 
+_MULTI_UNIT_CAUTION = ("A multi-unit is not a single cell: ISI statistics of multi-units "
+                       "are compared with caution.")
+
 _DISTANCE, _SIMILARITY = "distance", "similarity"
 _WORDS = {
     "occupancy_tvd": "state occupancy",
@@ -775,8 +778,7 @@ def _judge(name, value, reference, boots):
                 f"{pct} percentile between model surrogates of the data's size "
                 f"(B = {ref_ok.size}); {verdict} (p = {p:.3g}).")
     if name == "isi_cv_ks":
-        text += (" A multi-unit is not a single cell: ISI statistics of multi-units are "
-                 "compared with caution.")
+        text += " " + _MULTI_UNIT_CAUTION
     return MetricResult(name=name, kind=_kind(name), value=float(value),
                         reference=np.asarray(reference, dtype=float), ref=ref,
                         ci=np.asarray(ci, dtype=float), p_value=p, consistent=consistent,
@@ -953,6 +955,12 @@ class Comparison:
     unit_ids : list of str
     text : list of str
         Plain-words sentences, ending with the caution.
+    multi_units : list of str
+        Compared units that the recording's metadata marks as multi-units
+        (:meth:`~attractorfit.recording.Recording.multi_units`), named in the ISI
+        caution; empty when none is marked or nothing says.
+    multi_unit_column : str or None
+        The unit metadata column that told them apart (None: no such column).
     """
 
     n_states: int
@@ -998,6 +1006,8 @@ class Comparison:
     alpha: float
     unit_ids: list = field(default_factory=list)
     text: list = field(default_factory=list)
+    multi_units: list = field(default_factory=list)
+    multi_unit_column: str | None = None
 
     # ------------------------------------------------------------- figures
     def survival_for_plot(self) -> tuple:
@@ -1062,6 +1072,8 @@ class Comparison:
                            for label, t in self.conditions.items()},
             "nulls": {k: v.to_dict() for k, v in self.nulls.items()},
             "text": " ".join(self.text), "caution": CAUTION,
+            "isi_cv_multi_units": list(self.multi_units),
+            "multi_unit_column": self.multi_unit_column,
             "reference_rule": ("distance consistent when <= 95th percentile (_ref95), R^2 "
                                "when >= 5th percentile (_ref05), of the statistic with "
                                "each model surrogate in the data's place (leave one out); "
@@ -1335,7 +1347,8 @@ def _compare_null(null_name, null_sums, data_sum, model_ens, model_loo, model_fu
 
 def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=None,
             refit=True, condition=None, count_window_s: float = 0.1, n_boot: int = 500,
-            alpha: float = 0.05, rng=None, n_jobs: int = 1) -> Comparison:
+            alpha: float = 0.05, rng=None, n_jobs: int = 1,
+            multi_unit_column: str = "auto") -> Comparison:
     """Run the same analysis on the data and on each surrogate; judge every statistic.
 
     Parameters
@@ -1381,6 +1394,10 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
     n_jobs : int
         Parallel workers for the per-dataset analysis (joblib); the result does not
         depend on it.
+    multi_unit_column : str
+        Unit metadata column of ``recording`` that marks multi-units (see
+        :meth:`~attractorfit.recording.Recording.multi_units`; ``"auto"`` finds one,
+        ``""`` none). The ISI statistic's text names the compared multi-units.
 
     Returns
     -------
@@ -1491,6 +1508,7 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
     names = _metric_names(cond_specs, has_cv)
     ens = _Ensemble(model_sums)
     metrics, full, loo = _judge_all(names, data_sum, ens, n_boot, boot_rng)
+    multi = _note_multi_units(metrics, recording, data.unit_ids, multi_unit_column)
     refit_metrics = {}
     if refit_fn is not None:
         r_names = ["occupancy_tvd", "dwell_logrank", "dwell_logratio", "transition_distance",
@@ -1499,9 +1517,36 @@ def compare(data, surrogates, state_fit, *, recording=None, nulls=None, trials=N
                                          n_boot, boot_rng)
     nres = {nm: _compare_null(nm, sums, data_sum, ens, loo, full, metrics, names, alpha)
             for nm, sums in null_sums.items()}
-    return _assemble(data, pos, held_out, S, data_sum, ens, full, metrics, refit_metrics,
-                     data_refit, model_refit, nres, cond_specs, alpha, n_boot, boot_rng,
-                     getattr(state_fit, "label_to_state", None))
+    out = _assemble(data, pos, held_out, S, data_sum, ens, full, metrics, refit_metrics,
+                    data_refit, model_refit, nres, cond_specs, alpha, n_boot, boot_rng,
+                    getattr(state_fit, "label_to_state", None))
+    out.multi_unit_column, out.multi_units = multi
+    return out
+
+
+def _note_multi_units(metrics, recording, unit_ids, column) -> tuple:
+    """Which compared units are multi-units; said in the ISI statistic's text.
+
+    Returns ``(column or None, ids)``. The generic caution stays when the metadata
+    does not say; with a marking column the text names the multi-units (or says
+    that none of the compared units is one).
+    """
+    if recording is None:
+        return None, []
+    column, ids = recording.multi_units(column)
+    ids = [u for u in unit_ids if u in set(ids)]
+    m = metrics.get("isi_cv_ks")
+    if m is not None and column is not None:
+        if ids:
+            shown = ", ".join(repr(u) for u in ids[:12]) + (", ..." if len(ids) > 12 else "")
+            note = (f"A multi-unit is not a single cell: {len(ids)} of the {len(unit_ids)} "
+                    f"units compared are multi-units by their {column} ({shown}); their "
+                    "ISI statistics are compared with caution.")
+        else:
+            note = (f"None of the {len(unit_ids)} units compared is a multi-unit by its "
+                    f"{column}.")
+        m.text = m.text.replace(_MULTI_UNIT_CAUTION, note)
+    return column, ids
 
 
 def _assemble(data, pos, held_out, S, ds, ens, full, metrics, refit_metrics, data_refit,

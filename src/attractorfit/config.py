@@ -53,6 +53,16 @@ def _window(v):
         len(v) == 2 and all(_num()(x) for x in v) and v[1] > v[0]))
 
 
+def _unit_selection(v):
+    """{column = [values]} with text or number values (a single value allowed)."""
+    def ok(x):
+        return isinstance(x, (str, int, float)) and not isinstance(x, bool)
+    return isinstance(v, dict) and all(
+        isinstance(k, str) and k and (ok(x) or (isinstance(x, list) and x
+                                                  and all(ok(y) for y in x)))
+        for k, x in v.items())
+
+
 PARAMETERS: dict[str, dict[str, Param]] = {
     "analysis": {
         "bin_size": Param(0.05, "width of the count bins, seconds", _num(0, 10, lo_open=True),
@@ -71,6 +81,27 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "continuous_window_s": Param(10.0, "window length standing in for trials when the "
                                            "recording has none, seconds",
                                      _num(0, lo_open=True), "a number > 0"),
+    },
+    "units": {
+        "keep": Param({}, "units to analyse, by their metadata (the units table of an NWB "
+                          "file, the cluster labels of a sorter folder as column 'group'; "
+                          "'attractorfit inspect' lists the columns and values): "
+                          "{unit_type = [\"SU\"]} keeps the units whose unit_type is SU; "
+                          "with several columns a unit must match each; values compare "
+                          "as text, ignoring case. The others are left out before binning "
+                          "(summary.json recording.units_left_out says which). Empty: "
+                          "every unit. Command line: --units COLUMN=VALUE[,VALUE]",
+                      _unit_selection, "a table {column = [values]} of text or numbers"),
+        "multi_unit_column": Param("auto", "unit metadata column that marks multi-units: "
+                                           "a unit whose value there is mu, mua, multi or "
+                                           "multi-unit (any case; spaces, hyphens and "
+                                           "underscores ignored) is a multi-unit, named in "
+                                           "the ISI caution of the comparison; 'auto': the "
+                                           "first of unit_type, type, quality, group, "
+                                           "label, KSLabel, classification, then any other "
+                                           "text column, holding such a value; '': none",
+                                   lambda v: isinstance(v, str),
+                                   "a column name, 'auto' or ''"),
     },
     "states": {
         "n_states": Param(0, "number of states; 0 chooses it from the data",
@@ -189,7 +220,7 @@ PARAMETERS: dict[str, dict[str, Param]] = {
                                 "remove some, so the network no longer has an attractor at "
                                 "every state (the report shows how far they moved)",
                              _num(0, 100, integer=True), "a whole number from 0 to 100"),
-        "cue_drive": Param(False, "hold a constant latent input (cue field) along the "
+        "cue_field": Param(False, "hold a constant latent input (cue field) along the "
                                   "code of each condition level's most used state through "
                                   "that level's trials, its one strength calibrated so that "
                                   "the model's per-level state use matches the data's (needs "
@@ -232,17 +263,30 @@ PARAMETERS: dict[str, dict[str, Param]] = {
 }
 
 
+#: Settings that were renamed: (section, old key) -> new key. A user's file naming an old
+#: key gets an error naming the new one; a run folder's own config.toml, written by an
+#: earlier version, is read with the new names (``old_names=True``).
+RENAMED: dict[tuple[str, str], str] = {("network", "cue_drive"): "cue_field"}
+
+
 def default_config() -> dict:
     """The default configuration as a nested dict (a fresh copy)."""
     return {s: {k: _copy(p.default) for k, p in sec.items()} for s, sec in PARAMETERS.items()}
 
 
 def _copy(v):
+    if isinstance(v, dict):
+        return {k: _copy(x) for k, x in v.items()}
     return list(v) if isinstance(v, list) else v
 
 
-def resolve_config(overrides: dict | None, *, source: str = "configuration") -> dict:
-    """Defaults updated with ``overrides``; unknown keys and bad values raise InputError."""
+def resolve_config(overrides: dict | None, *, source: str = "configuration",
+                   old_names: bool = False) -> dict:
+    """Defaults updated with ``overrides``; unknown keys and bad values raise InputError.
+
+    ``old_names=True`` reads the keys of :data:`RENAMED` under their new names (for run
+    folders of earlier versions); otherwise an old key is an error naming the new one.
+    """
     cfg = default_config()
     for section, values in (overrides or {}).items():
         if section not in PARAMETERS:
@@ -251,6 +295,7 @@ def resolve_config(overrides: dict | None, *, source: str = "configuration") -> 
         if not isinstance(values, dict):
             raise InputError(f"{source}: [{section}] must be a table of settings")
         for key, value in values.items():
+            key = _current_name(section, key, source, old_names)
             p = PARAMETERS[section].get(key)
             if p is None:
                 raise InputError(f"{source}: unknown setting {section}.{key}; expected one of "
@@ -272,6 +317,16 @@ def resolve_config(overrides: dict | None, *, source: str = "configuration") -> 
         raise InputError(f"{source}: states.n_states = 1; expected 0 (choose) or at least 2 "
                          "states")
     return cfg
+
+
+def _current_name(section: str, key: str, source: str, old_names: bool) -> str:
+    new = RENAMED.get((section, key))
+    if new is None:
+        return key
+    if old_names:
+        return new
+    raise InputError(f"{source}: {section}.{key} was renamed; write {section}.{new} "
+                     "instead (same meaning and values)")
 
 
 def check_config_for_data(cfg: dict, *, n_units: int, source: str = "configuration") -> None:
@@ -302,8 +357,10 @@ def check_config_for_data(cfg: dict, *, n_units: int, source: str = "configurati
                          "units analysed (or 0 for the state model's code length)")
 
 
-def load_config(path) -> dict:
+def load_config(path, *, old_names: bool = False) -> dict:
     """Read a TOML file and resolve it against the defaults.
+
+    ``old_names``: see :func:`resolve_config` (True for a run folder's own config.toml).
 
     Raises
     ------
@@ -320,7 +377,7 @@ def load_config(path) -> dict:
         raise InputError(f"{path}: cannot read the configuration ({exc})") from None
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{path}: not valid TOML ({exc})") from None
-    return resolve_config(data, source=os.path.basename(path))
+    return resolve_config(data, source=os.path.basename(path), old_names=old_names)
 
 
 def _toml_value(v) -> str:
@@ -332,7 +389,13 @@ def _toml_value(v) -> str:
         return repr(v)
     if isinstance(v, list):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + "}"
     return str(v)
+
+
+def _toml_key(k: str) -> str:
+    return k if k and all(c.isalnum() or c in "_-" for c in k) else _toml_value(str(k))
 
 
 def dumps_config(cfg: dict | None = None, *, comments: bool = True) -> str:

@@ -58,7 +58,7 @@ The fit, step by step (DESIGN.md, network model and Amendments 1, 2, 3, 5):
 7. *Trial structure.* Surrogate trials have the data's analysis-window lengths and
    labels, and each starts at the vertex of a state drawn (stratified) from the
    distribution of the first state of the data's trials of the same condition.
-8. *Cue field* (optional, ``cue_drive=True``). Nothing in steps 1-7 holds a trial to its
+8. *Cue field* (optional, ``cue_field=True``). Nothing in steps 1-7 holds a trial to its
    condition after the first state, so an excursion forgets the cue. With the option,
    every trial of level ``l`` receives a constant latent input ``g x^{c_l}`` (``c_l`` the
    state the level's training trials occupy most) and the one strength ``g`` is
@@ -134,7 +134,7 @@ class FitOptions:
 
     Attributes
     ----------
-    rule, hypercube, rank, extra_neurons, tau_s_range, dt, cue_drive, stability, field_steps
+    rule, hypercube, rank, extra_neurons, tau_s_range, dt, cue_field, stability, field_steps
         As the keywords of :func:`fit_network` (``rank`` 0 in the configuration means
         None here: the state model's code length).
     """
@@ -145,7 +145,7 @@ class FitOptions:
     extra_neurons: int = 0
     tau_s_range: tuple = (0.01, 0.3)
     dt: float = 1e-4
-    cue_drive: bool = False
+    cue_field: bool = False
     stability: str = "spectral"
     field_steps: int = 0
 
@@ -157,7 +157,7 @@ class FitOptions:
                    rank=None if nw["rank"] in (0, None) else nw["rank"],
                    extra_neurons=int(nw["extra_neurons"]),
                    tau_s_range=(float(nw["tau_s_min"]), float(nw["tau_s_max"])),
-                   dt=float(nw["dt"]), cue_drive=bool(nw["cue_drive"]),
+                   dt=float(nw["dt"]), cue_field=bool(nw["cue_field"]),
                    stability=nw["stability"], field_steps=int(nw["field_steps"]))
 
     def keywords(self) -> dict:
@@ -206,7 +206,7 @@ WEIGHT_RANGE = (0.05, 20.0)
 OCC_EPS = 0.01
 #: Silent time (s) between consecutive surrogate trials.
 TRIAL_GAP_S = 0.5
-#: Cue field (``cue_drive=True``): range of the strength ``g`` (latent units; the field of
+#: Cue field (``cue_field=True``): range of the strength ``g`` (latent units; the field of
 #: level l is ``g x^pref(l)``), the first strength tried, the tolerance on the mean use of
 #: the cue state (fraction of delay time, averaged over levels) and the calibration
 #: simulations allowed for the field (strength and, with the field on, tau_s again).
@@ -1093,7 +1093,7 @@ class NetworkFit:
         objective after the occupancy rounds (geometric mean 1; NaN or None for the
         other rules).
     cue_field : ndarray (L + 1, K) or None
-        Cue field (``cue_drive=True``): the constant latent input ``h_l`` held through
+        Cue field (``cue_field=True``): the constant latent input ``h_l`` held through
         every trial of level ``l`` (it enters the neurons' input as ``E (y + h_l)``);
         ``h_l = cue_strength * x^{cue_states[l]}``; last row (trials of no known level)
         zero. None or all zero: no field.
@@ -1427,7 +1427,7 @@ class NetworkFit:
             "history": {k: [float(x) for x in v] for k, v in self.history.items()},
             "held_out": self.train_trials is not None,
             "notes": list(self.notes),
-            **({} if self.cue_field is None else {"cue_drive": self._cue_block()}),
+            **({} if self.cue_field is None else {"cue_field": self._cue_block()}),
         }
 
     def _cue_block(self):
@@ -1735,7 +1735,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 rank="auto", tau_s_range=(0.01, 0.3), dt=1e-4, noise=None, recording=None,
                 condition=None, train_trials=None, n_calibration_sims=None, max_evaluations=14,
                 dwell_tol=0.05, margin=0.05, depth_iterations=3, occupancy_tol=0.03,
-                cue_drive=False, cue_evaluations=CUE_EVALUATIONS,
+                cue_field=False, cue_evaluations=CUE_EVALUATIONS,
                 stability="spectral", field_steps=0, rng=None,
                 progress=False) -> NetworkFit:
     """Fit a low-rank LIF network whose attractors sit at the data's states.
@@ -1804,7 +1804,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
         docstring.)
     occupancy_tol : float
         Occupancy rounds stop once the calibration occupancy TVD is at most this.
-    cue_drive : bool
+    cue_field : bool
         Fit a cue field (needs a condition column): every trial of level ``l`` receives
         the constant latent input ``h_l = g x^{c_l}`` for its whole length, where
         ``c_l`` is the state the training trials of level ``l`` occupy most (the cue
@@ -1895,8 +1895,8 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     max_evaluations = check_int("max_evaluations", max_evaluations, low=1)
     field_steps = check_int("field_steps", field_steps, low=0)
     cue_evaluations = check_int("cue_evaluations", cue_evaluations, low=1)
-    if not isinstance(cue_drive, (bool, np.bool_)):
-        raise InputError(f"cue_drive: expected true or false, got {cue_drive!r}")
+    if not isinstance(cue_field, (bool, np.bool_)):
+        raise InputError(f"cue_field: expected true or false, got {cue_field!r}")
     dwell_tol = check_positive("dwell_tol", dwell_tol)
     depth_iterations = check_int("depth_iterations", depth_iterations, low=0)
     occupancy_tol = check_fraction("occupancy_tol", occupancy_tol)
@@ -2077,9 +2077,9 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     hist = {"tau_s": [], "mean_dwell_s": [], "occupancy_tvd": [], "dwell_loss": [],
             "loss": [], "round": [], "n_trials": []}
     n_lev = len(levels)
-    cue_on = bool(cue_drive) and cond is not None and n_lev >= 1
-    if cue_drive and not cue_on:
-        notes.append("cue_drive: the trials have no condition column; no cue field was "
+    cue_on = bool(cue_field) and cond is not None and n_lev >= 1
+    if cue_field and not cue_on:
+        notes.append("cue_field: the trials have no condition column; no cue field was "
                      "fitted.")
     if cue_on:
         # the data's per-level state use (training trials) and each level's cue state

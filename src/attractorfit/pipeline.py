@@ -9,6 +9,7 @@ atomically and never into the input's folder unless the user names it.
 from __future__ import annotations
 
 import hashlib
+import json
 import logging
 import os
 import platform
@@ -33,8 +34,8 @@ __all__ = ["RunFolder", "RunResult", "run_states", "input_record", "versions",
 #: Files a run folder may hold; a folder holding anything else is not ours to overwrite.
 RUN_FILES = ("summary.json", "states.csv", "posteriors.npz", "config.toml", "model.npz",
              "surrogate.nwb", "report.html", "figures", "tables", "input.json",
-             "state_model.npz", "discreteness.npz", "lab_checks.npz", "comparison.npz",
-             "run_log.txt")
+             "state_model.npz", "discreteness.npz", "extra_checks.npz", "comparison.npz",
+             "run_log.txt", "lab_checks.npz")  # the last: extra_checks.npz of earlier versions
 
 
 def versions() -> dict:
@@ -161,14 +162,19 @@ class RunResult:
 
 
 def bin_for_analysis(recording, cfg: dict):
-    """Bin ``recording`` as the configuration's [analysis] section says."""
+    """Bin ``recording`` as the configuration's [analysis] section says.
+
+    The one place where ``[units] keep`` selects units (before binning).
+    """
     from attractorfit.binning import bin_spikes
 
     a = cfg["analysis"]
     window = tuple(a["window"]) if a["window"] else (None, None)
+    recording.multi_units(cfg.get("units", {}).get("multi_unit_column", ""))  # named: exists
     return bin_spikes(recording, bin_size=a["bin_size"], window=window,
                       align=a["align"] or None, min_rate_hz=a["min_rate_hz"],
-                      continuous_window_s=a["continuous_window_s"])
+                      continuous_window_s=a["continuous_window_s"],
+                      units=cfg.get("units", {}).get("keep") or None)
 
 
 def _condition_column(binned, cfg) -> str | None:
@@ -234,12 +240,23 @@ def base_summary(result: RunResult, *, seed: int) -> dict:
                       "duration_s": rec.duration, "n_units_analysed": b.n_units,
                       "n_trials_analysed": b.n_trials,
                       "pseudo_trials": bool(b.pseudo_trials),
+                      "units_left_out": units_left_out(b, cfg),
                       "warnings": list(rec.warnings)},
         "analysis": {"bin_size_s": b.bin_size, "align": cfg["analysis"]["align"] or None,
                      "window": list(cfg["analysis"]["window"]) or None,
                      "unit_ids": list(b.unit_ids)},
         **lab_summary(result),
     }
+
+
+def units_left_out(binned, cfg: dict) -> dict:
+    """summary.json ``recording.units_left_out``: per reason, how many units and which."""
+    why = {"selection": "not matched by units.keep = "
+                        + json.dumps(cfg.get("units", {}).get("keep", {}), sort_keys=True),
+           "silent": "no spike inside the analysis windows",
+           "below_min_rate": f"below analysis.min_rate_hz = {cfg['analysis']['min_rate_hz']:g} Hz"}
+    return {k: {"n_units": len(ids), "reason": why[k], "units": list(ids)}
+            for k, ids in binned.left_out.items()}
 
 
 def write_state_outputs(folder: RunFolder, result: RunResult) -> None:
@@ -416,7 +433,8 @@ def compare_model(result: RunResult, *, seed: int = 0, n_jobs: int = 1,
         cmp_ = compare(b, sur, sf, recording=rec, nulls=nulls,
                        trials=held if held.size else None, refit=cp["refit"],
                        condition=cond, n_boot=cp["n_boot"],
-                       rng=np.random.default_rng(streams["compare"]), n_jobs=n_jobs)
+                       rng=np.random.default_rng(streams["compare"]), n_jobs=n_jobs,
+                       multi_unit_column=cfg.get("units", {}).get("multi_unit_column", "auto"))
     result.comparison = cmp_
     first = bin_like(sur[0], b)
     result.surrogate_example = (sur[0], first, sf.decode(first))
@@ -461,7 +479,8 @@ def run_lab_checks(result: RunResult, *, seed: int = 0) -> RunResult:
             a = cfg["analysis"]
             rebinned = {}
             for f in rc["bin_factors"]:
-                name = {0.5: "bin/2", 2.0: "bin*2"}.get(float(f), f"bin x{float(f):g}")
+                name = {0.5: "bin_halved", 2.0: "bin_doubled"}.get(
+                    float(f), f"bin_times_{float(f):g}".replace(".", "p"))
                 sub = {**cfg, "analysis": {**a, "bin_size": a["bin_size"] * float(f)}}
                 try:  # the main binning has already said what these would repeat
                     with collect_input_warnings([], reemit_input=False):

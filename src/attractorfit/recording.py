@@ -21,6 +21,12 @@ __all__ = ["Recording", "file_provenance"]
 #: Inter-spike intervals shorter than this count as refractory violations
 #: (common practice for single-unit contamination estimates).
 REFRACTORY_S = 0.0015
+#: Unit metadata values (any case, spaces/hyphens/underscores ignored) that mark a
+#: multi-unit: see :meth:`Recording.multi_units`.
+MULTI_UNIT_VALUES = ("mu", "mua", "multi", "multiunit", "multiunitactivity")
+#: Unit metadata columns searched first, in order, by ``multi_units(column="auto")``.
+MULTI_UNIT_COLUMNS = ("unit_type", "type", "quality", "group", "label", "KSLabel",
+                      "classification")
 
 
 def file_provenance(path) -> dict:
@@ -53,6 +59,13 @@ class Recording:
         One record per file read: ``path``, ``size``, ``sha256``.
     warnings : list of str
         Warnings about the input, collected by the loaders and by :meth:`validate`.
+    unit_info : dict of str to ndarray
+        Per-unit metadata columns, one value per unit in the order of ``unit_ids``
+        (text as ``str`` arrays, numbers as numeric arrays): e.g. the single/multi-unit
+        type, the recording site or a sorter's quality label. Read from the NWB units
+        table (every one-value-per-unit column) and from a sorter folder's cluster
+        labels (column ``group``); empty when the input has none. Used to select units
+        (:meth:`match_units`) and to flag multi-units (:meth:`multi_units`).
 
     Notes
     -----
@@ -66,6 +79,7 @@ class Recording:
     metadata: dict = field(default_factory=dict)
     provenance: list = field(default_factory=list)
     warnings: list = field(default_factory=list)
+    unit_info: dict = field(default_factory=dict)
 
     # ------------------------------------------------------------------ shape
     @property
@@ -116,7 +130,8 @@ class Recording:
     # ----------------------------------------------------------- construction
     @classmethod
     def from_arrays(cls, spike_times, spike_units, *, trials=None, unit_ids=None,
-                    metadata=None, provenance=None, source="<arrays>", min_units=2):
+                    metadata=None, provenance=None, source="<arrays>", min_units=2,
+                    unit_info=None):
         """Build and validate a Recording from flat arrays.
 
         Parameters
@@ -136,6 +151,9 @@ class Recording:
             File name used in error messages.
         min_units : int
             Fewest units accepted.
+        unit_info : dict of str to array_like, optional
+            Per-unit metadata columns, one value per unit in the order of the
+            result's ``unit_ids`` (see the class docstring).
 
         Returns
         -------
@@ -168,7 +186,8 @@ class Recording:
         bounds = np.searchsorted(codes[order], np.arange(len(unit_ids) + 1))
         trains = [times[order[bounds[k]:bounds[k + 1]]] for k in range(len(unit_ids))]
         rec = cls(unit_ids=unit_ids, spike_times=trains, trials=trials,
-                  metadata=dict(metadata or {}), provenance=list(provenance or []))
+                  metadata=dict(metadata or {}), provenance=list(provenance or []),
+                  unit_info=dict(unit_info or {}))
         rec.metadata.setdefault("source", source)
         return rec.validate(min_units=min_units)
 
@@ -201,6 +220,7 @@ class Recording:
         if self.n_units < min_units:
             raise InputError(f"{src}: found {self.n_units} unit(s); expected at least "
                              f"{min_units} simultaneously recorded units")
+        self.unit_info = _check_unit_info(self.unit_info, self.n_units, src)
         sorted_notes: list = []  # "not in order; sorted" warnings, kept for the summary
         with collect_input_warnings(sorted_notes):
             self.spike_times = [check_spike_times(t, source=src, unit=u)
@@ -266,7 +286,108 @@ class Recording:
         idx = np.arange(self.n_units)[np.asarray(keep)]
         return replace(self, unit_ids=[self.unit_ids[i] for i in idx],
                        spike_times=[self.spike_times[i] for i in idx],
-                       metadata=dict(self.metadata), warnings=list(self.warnings))
+                       metadata=dict(self.metadata), warnings=list(self.warnings),
+                       unit_info={c: np.asarray(v)[idx] for c, v in self.unit_info.items()})
+
+    def unit_metadata(self, k: int) -> dict:
+        """Unit ``k``'s metadata as text, ``{column: value}`` (whole numbers as such)."""
+        return {c: _value_text(np.asarray(v)[k]) for c, v in self.unit_info.items()}
+
+    def unit_info_counts(self, *, max_levels: int = 20) -> dict:
+        """Each unit metadata column's values and how many units have each.
+
+        Returns
+        -------
+        dict of str to dict
+            Per column, ``{value: count}`` (values as text, sorted naturally) when
+            it has at most ``max_levels`` distinct values; otherwise
+            ``{"distinct": n, "min": ..., "max": ...}`` (min/max for numbers only).
+        """
+        out = {}
+        for col, values in self.unit_info.items():
+            text = [_value_text(v) for v in np.asarray(values).tolist()]
+            levels = _natural_sort(sorted(set(text)))
+            if len(levels) <= max_levels:
+                out[col] = {lv: text.count(lv) for lv in levels}
+                continue
+            out[col] = {"distinct": len(levels)}
+            if np.asarray(values).dtype.kind in "biuf":
+                out[col].update(min=float(np.min(values)), max=float(np.max(values)))
+        return out
+
+    def match_units(self, keep: dict, *, option: str = "units.keep (--units)") -> np.ndarray:
+        """Boolean mask of the units whose metadata matches ``keep``.
+
+        Parameters
+        ----------
+        keep : dict of str to list
+            Unit metadata column -> accepted values. A unit is kept when, in every
+            column named, its value is one of the accepted ones. Values compare as
+            text, ignoring case and surrounding spaces (``1`` matches ``1.0``).
+            Empty: every unit.
+        option : str
+            Name of the setting, for messages.
+
+        Raises
+        ------
+        InputError
+            A column the recording does not have, or a value that no unit has.
+        """
+        mask = np.ones(self.n_units, dtype=bool)
+        for col, wanted in (keep or {}).items():
+            if col not in self.unit_info:
+                have = sorted(self.unit_info) or "none"
+                raise InputError(f"{option}: {self.source} has no unit column {col!r}; "
+                                 f"unit columns there: {have}")
+            wanted = wanted if isinstance(wanted, (list, tuple)) else [wanted]
+            text = np.array([_value_key(v) for v in np.asarray(self.unit_info[col]).tolist()])
+            for w in wanted:
+                if _value_key(w) not in text:
+                    levels = ", ".join(f"{k} ({n})" for k, n in
+                                       self.unit_info_counts()[col].items())
+                    raise InputError(f"{option}: {col} = {w!r} matches no unit of "
+                                     f"{self.source}; values of {col} there: {levels}")
+            mask &= np.isin(text, [_value_key(w) for w in wanted])
+        return mask
+
+    def multi_units(self, column: str = "auto") -> tuple:
+        """Units that the metadata marks as multi-units.
+
+        Parameters
+        ----------
+        column : str
+            Unit metadata column telling multi-units from single units. A unit is a
+            multi-unit when its value there is one of :data:`MULTI_UNIT_VALUES`
+            (``mu``, ``mua``, ``multi``, ``multiunit``, ``multi-unit``, ``multi unit``...;
+            any case, spaces, hyphens and underscores ignored). ``"auto"``: the first
+            column of :data:`MULTI_UNIT_COLUMNS`, then any other text column, holding
+            such a value. ``""``: none.
+
+        Returns
+        -------
+        (str or None, list of str)
+            The column used (None if none) and the ids of the multi-units.
+
+        Raises
+        ------
+        InputError
+            A named column the recording does not have.
+        """
+        if not column:
+            return None, []
+        if column == "auto":
+            order = [c for c in MULTI_UNIT_COLUMNS if c in self.unit_info]
+            order += [c for c in self.unit_info if c not in order]
+            found = [c for c in order if _multi_mask(self.unit_info[c]).any()]
+            if not found:
+                return None, []
+            column = found[0]
+        elif column not in self.unit_info:
+            raise InputError(f"units.multi_unit_column: {self.source} has no unit column "
+                             f"{column!r}; unit columns there: "
+                             f"{sorted(self.unit_info) or 'none'}")
+        mask = _multi_mask(self.unit_info[column])
+        return column, [u for u, m in zip(self.unit_ids, mask) if m]
 
     def trial_spikes(self, trial: int) -> list:
         """Spike times of each unit in ``trial``, relative to the trial start."""
@@ -356,6 +477,50 @@ class Recording:
     def __repr__(self) -> str:  # short: never dump arrays
         return (f"Recording({self.n_units} units, {self.n_spikes} spikes, "
                 f"{self.n_trials} trials, {self.duration:.1f} s, source={self.source!r})")
+
+
+def _value_text(v) -> str:
+    """A metadata value as text: whole numbers without a decimal point."""
+    if isinstance(v, (bool, np.bool_)):
+        return str(bool(v)).lower()
+    if isinstance(v, (int, float, np.integer, np.floating)):
+        f = float(v)
+        return str(int(f)) if f.is_integer() else repr(f)
+    return str(v).strip()
+
+
+def _value_key(v) -> str:
+    """A metadata value as compared by :meth:`Recording.match_units`."""
+    return _value_text(v).lower()
+
+
+def _multi_mask(values) -> np.ndarray:
+    values = np.asarray(values)
+    if values.dtype.kind not in "US":
+        return np.zeros(values.size, dtype=bool)
+    marks = {v.replace("-", "").replace("_", "").replace(" ", "") for v in MULTI_UNIT_VALUES}
+    return np.array([_value_key(v).replace("-", "").replace("_", "").replace(" ", "")
+                     in marks for v in values.tolist()], dtype=bool)
+
+
+def _check_unit_info(info, n_units: int, src: str) -> dict:
+    """Unit metadata as 1-D arrays of one number or text per unit."""
+    if not isinstance(info, dict):
+        raise InputError(f"{src}: unit_info must be a dict of columns, got "
+                         f"{type(info).__name__}")
+    out = {}
+    for col, values in info.items():
+        arr = np.asarray(values)
+        if arr.ndim != 1 or arr.size != n_units:
+            raise InputError(f"{src}: unit column {col!r} has shape {arr.shape}; expected "
+                             f"one value per unit ({n_units})")
+        if arr.dtype.kind == "O" or arr.dtype.kind == "S":
+            arr = arr.astype(str)
+        if arr.dtype.kind not in "biufU":
+            raise InputError(f"{src}: unit column {col!r} has dtype {arr.dtype}; expected "
+                             "numbers or text")
+        out[str(col)] = arr
+    return out
 
 
 def _neo_unit_id(st, k) -> str:

@@ -119,7 +119,7 @@ def state_rate_vectors(n_states: int, n_units: int, *, rate_range=(2.0, 25.0),
 
 
 def switching_counts(rates_hz, *, n_trials: int, n_bins: int, bin_size: float = 0.02,
-                     mean_dwell_s: float = 0.4, transmat=None, start=None,
+                     mean_dwell_s: float = 0.4, switch_weights=None, start=None,
                      level_names=None, rng=None):
     """Binned counts of a semi-Markov switching process, without spike times.
 
@@ -127,7 +127,7 @@ def switching_counts(rates_hz, *, n_trials: int, n_bins: int, bin_size: float = 
     :class:`~attractorfit.binning.BinnedCounts` are needed: each trial starts in
     ``start[k]`` (default ``k mod S``), dwells are gamma (shape 2, mean
     ``mean_dwell_s``, rounded to whole bins, at least one), the next state is drawn
-    from ``transmat`` (diagonal ignored; default uniform over the other states), and
+    from ``switch_weights`` (diagonal ignored; default uniform over the other states), and
     counts are Poisson with mean ``rates_hz[state] * bin_size``.
 
     Parameters
@@ -137,7 +137,8 @@ def switching_counts(rates_hz, *, n_trials: int, n_bins: int, bin_size: float = 
     bin_size : float
         Seconds per bin.
     mean_dwell_s : float
-    transmat : array_like (S, S), optional
+    switch_weights : array_like (S, S), optional
+        Relative weights of the next state at a switch (row = current state).
     start : array_like of int (n_trials,), optional
     level_names : str or sequence, optional
         Name of each starting state in the ``item`` label (default ``str(state)``).
@@ -153,7 +154,8 @@ def switching_counts(rates_hz, *, n_trials: int, n_bins: int, bin_size: float = 
     rng = check_rng(rng)
     rates_hz = np.asarray(rates_hz, dtype=float)
     n_states, n_units = rates_hz.shape
-    tm = np.ones((n_states, n_states)) if transmat is None else np.array(transmat, float)
+    tm = (np.ones((n_states, n_states)) if switch_weights is None
+          else np.array(switch_weights, float))
     np.fill_diagonal(tm, 0.0)
     tm /= tm.sum(axis=1, keepdims=True)
     start = np.arange(n_trials) % n_states if start is None else np.asarray(start)
@@ -175,7 +177,7 @@ def switching_counts(rates_hz, *, n_trials: int, n_bins: int, bin_size: float = 
                         labels={"item": np.array([names[i] for i in start])})
 
 
-def _semi_markov(duration, start_state, n_states, mean_dwell_s, dwell_shape, transmat, rng):
+def _semi_markov(duration, start_state, n_states, mean_dwell_s, dwell_shape, next_probs, rng):
     times, states = [0.0], [start_state]
     t, s = 0.0, start_state
     while True:
@@ -183,7 +185,7 @@ def _semi_markov(duration, start_state, n_states, mean_dwell_s, dwell_shape, tra
         t += d
         if t >= duration:
             break
-        s = int(rng.choice(n_states, p=transmat[s]))
+        s = int(rng.choice(n_states, p=next_probs[s]))
         times.append(t)
         states.append(s)
     return np.array(times), np.array(states, dtype=np.int64)
@@ -193,7 +195,7 @@ def switching_recording(*, n_units: int = 60, n_states: int = 4, n_trials: int =
                         trial_duration: float = 3.0, mean_dwell_s: float = 0.3,
                         dwell_shape: float = 2.0, modulation: float = 0.6,
                         rate_range=(2.0, 25.0), gamma_order: float = 2.0,
-                        state_rates_hz=None, transmat=None, start_states=None,
+                        state_rates_hz=None, switch_weights=None, start_states=None,
                         labels=None, iti: float = 0.5, rng=None):
     """Trials of a hidden semi-Markov switch among discrete states with gamma spiking.
 
@@ -213,8 +215,9 @@ def switching_recording(*, n_units: int = 60, n_states: int = 4, n_trials: int =
         Order of the gamma renewal spiking (1 = Poisson; > 1 more regular).
     state_rates_hz : ndarray (S, N), optional
         Use these rates instead of random ones.
-    transmat : ndarray (S, S), optional
-        Jump probabilities (diagonal ignored). Default: uniform over other states.
+    switch_weights : ndarray (S, S), optional
+        Relative weights of the next state at a switch (row = current state; diagonal
+        ignored, rows normalised). Default: uniform over the other states.
     start_states : array of int (n_trials,), optional
         First state of each trial. Default: uniform.
     labels : dict of arrays, optional
@@ -238,12 +241,12 @@ def switching_recording(*, n_units: int = 60, n_states: int = 4, n_trials: int =
         state_rates_hz = state_rate_vectors(n_states, n_units, rate_range=rate_range,
                                             modulation=modulation, rng=rng)
     rates = np.asarray(state_rates_hz, dtype=float)
-    if transmat is None:
-        transmat = np.ones((n_states, n_states))
-    transmat = np.array(transmat, dtype=float)
+    if switch_weights is None:
+        switch_weights = np.ones((n_states, n_states))
+    switch_weights = np.array(switch_weights, dtype=float)
     if n_states > 1:
-        np.fill_diagonal(transmat, 0.0)
-    transmat /= transmat.sum(axis=1, keepdims=True)
+        np.fill_diagonal(switch_weights, 0.0)
+    switch_weights /= switch_weights.sum(axis=1, keepdims=True)
     if start_states is None:
         start_states = rng.integers(n_states, size=n_trials)
     truth = SyntheticTruth(state_rates_hz=rates, trial_duration=trial_duration)
@@ -251,7 +254,7 @@ def switching_recording(*, n_units: int = 60, n_states: int = 4, n_trials: int =
     starts = np.arange(n_trials) * (trial_duration + iti) + iti
     for k in range(n_trials):
         sw, st = _semi_markov(trial_duration, int(start_states[k]), n_states, mean_dwell_s,
-                              dwell_shape, transmat, rng)
+                              dwell_shape, switch_weights, rng)
         truth.switch_times.append(sw)
         truth.states.append(st)
         edges = np.append(sw, trial_duration) + starts[k]

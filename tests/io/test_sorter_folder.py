@@ -90,6 +90,12 @@ def test_labels_and_good_only(tmp_path):
     rec = load(folder, good_only=True)
     assert rec.unit_ids == ["7", "9"]
     assert "cluster_group.tsv" in [os.path.basename(p["path"]) for p in rec.provenance]
+    # the labels are also unit metadata (column group): selectable, and mua is a multi-unit
+    rec = load(folder)
+    assert rec.unit_info["group"].tolist() == ["mua", "good", "good"]
+    assert rec.multi_units() == ("group", ["4"])
+    assert rec.match_units({"group": "GOOD"}).tolist() == [False, True, True]
+    assert load(_folder(tmp_path, name="bare")).unit_info == {}
 
 
 def test_templates_when_clusters_are_absent(tmp_path):

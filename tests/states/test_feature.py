@@ -53,7 +53,7 @@ def test_recovers_weights_up_to_permutation_and_sign():
     np.testing.assert_allclose(m.log_base_, b, atol=0.1)
     # feature chains recovered (matched by the same permutation; a sign flip swaps states)
     for k_true, k_fit in enumerate(bp):
-        A_fit = m.feature_transmat_[k_fit]
+        A_fit = m.feature_transition_probs_[k_fit]
         if bs[k_true] < 0:
             A_fit = A_fit[::-1, ::-1]
         np.testing.assert_allclose(A_fit, A[k_true], atol=0.03)
@@ -65,12 +65,13 @@ def test_recovers_weights_up_to_permutation_and_sign():
 def test_score_consistent_with_free_hmm_and_bruteforce():
     seqs, *_ = cube_data(1, n_trials=8, T=50)
     m = BinaryFeatureHMM(2, rng=0, n_restarts=1).fit(seqs)
-    # consistency: a free PoissonHMM given the joint rates and kron transmat scores the same
+    # consistency: a free PoissonHMM given the joint rates and kron transition matrix scores the same
     free = PoissonHMM(4)
-    free.startprob_ = np.kron(m.feature_startprob_[0], m.feature_startprob_[1])
-    free.transmat_ = np.kron(m.feature_transmat_[0], m.feature_transmat_[1])
+    free.initial_probs_ = np.kron(m.feature_initial_probs_[0], m.feature_initial_probs_[1])
+    free.transition_probs_ = np.kron(m.feature_transition_probs_[0],
+                                     m.feature_transition_probs_[1])
     free.rates_ = np.exp(m.log_base_[None, :] + m.codes_ @ m.weights_.T)
-    np.testing.assert_allclose(free.transmat_, m.transmat_, rtol=1e-14)
+    np.testing.assert_allclose(free.transition_probs_, m.transition_probs_, rtol=1e-14)
     assert m.score(seqs) == pytest.approx(free.score(seqs), rel=1e-12)
     np.testing.assert_allclose(m.predict_proba(seqs[0]), free.predict_proba(seqs[0]),
                                atol=1e-12)
@@ -80,9 +81,9 @@ def test_score_consistent_with_free_hmm_and_bruteforce():
     total = 0.0
     for path in itertools.product(range(4), repeat=3):
         bits = [(m.codes_[j] > 0).astype(int) for j in path]
-        p = np.prod([m.feature_startprob_[k, bits[0][k]] for k in range(2)])
+        p = np.prod([m.feature_initial_probs_[k, bits[0][k]] for k in range(2)])
         for t in (1, 2):
-            p *= np.prod([m.feature_transmat_[k, bits[t - 1][k], bits[t][k]]
+            p *= np.prod([m.feature_transition_probs_[k, bits[t - 1][k], bits[t][k]]
                           for k in range(2)])
         for t, j in enumerate(path):
             lam = np.exp(m.log_base_ + m.codes_[j] @ m.weights_.T)

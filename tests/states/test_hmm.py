@@ -42,7 +42,7 @@ def sample(rng, start, trans, rates, T):
 
 def set_model(start, trans, rates):
     m = PoissonHMM(n_states=len(start))
-    m.startprob_, m.transmat_, m.rates_ = start, trans, rates
+    m.initial_probs_, m.transition_probs_, m.rates_ = start, trans, rates
     return m
 
 
@@ -222,11 +222,11 @@ def test_sticky_map_objective_never_decreases():
     h = m.objective_history_
     assert np.all(np.diff(h) >= -1e-9 * np.abs(h[1:]))
     kappa = 0.5 * (8 * 80 - 8) / 4
-    expected = m.score(seqs) + kappa * np.log(np.diag(m.transmat_)).sum()
+    expected = m.score(seqs) + kappa * np.log(np.diag(m.transition_probs_)).sum()
     assert h[-1] == pytest.approx(expected, rel=1e-10)
     plain = PoissonHMM(4, n_restarts=1, rng=1).fit(seqs)
     # the prior raises the self-transition probabilities
-    assert np.diag(m.transmat_).mean() > np.diag(plain.transmat_).mean()
+    assert np.diag(m.transition_probs_).mean() > np.diag(plain.transition_probs_).mean()
 
 
 def test_fit_is_deterministic_and_rows_are_distributions():
@@ -234,8 +234,8 @@ def test_fit_is_deterministic_and_rows_are_distributions():
     a = PoissonHMM(3, rng=5).fit(seqs)
     b = PoissonHMM(3, rng=np.random.default_rng(5)).fit(seqs)
     np.testing.assert_array_equal(a.rates_, b.rates_)
-    np.testing.assert_allclose(a.transmat_.sum(1), 1, atol=1e-12)
-    assert a.startprob_.sum() == pytest.approx(1, abs=1e-12)
+    np.testing.assert_allclose(a.transition_probs_.sum(1), 1, atol=1e-12)
+    assert a.initial_probs_.sum() == pytest.approx(1, abs=1e-12)
     assert len(a.restart_objectives_) == 3
     assert a.objective_history_[-1] == pytest.approx(a.restart_objectives_.max())
 
@@ -245,7 +245,7 @@ def test_single_state_is_the_mean():
     seqs = _toy(14)
     m = PoissonHMM(1, rng=0).fit(seqs)
     np.testing.assert_allclose(m.rates_[0], np.concatenate(seqs).mean(0), rtol=1e-12)
-    assert m.transmat_[0, 0] == 1.0
+    assert m.transition_probs_[0, 0] == 1.0
 
 
 def test_init_given_continues_from_parameters():
@@ -253,7 +253,7 @@ def test_init_given_continues_from_parameters():
     m = PoissonHMM(3, rng=0, n_restarts=1, max_iter=5, tol=1e-12)
     start, trans, rates = random_params(np.random.default_rng(0), 3, 10)
     m.set_params(init="given")
-    m.startprob_, m.transmat_, m.rates_ = start, trans, rates
+    m.initial_probs_, m.transition_probs_, m.rates_ = start, trans, rates
     before = set_model(start, trans, rates).score(seqs)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
@@ -368,21 +368,22 @@ def test_input_errors():
     with pytest.raises(InputError, match=r"X: has 4 units \(columns\) but the fitted model "
                                          "has 3"):
         m.score(np.ones((5, 4)))
-    with pytest.raises(InputError, match=r"transmat_: row 0 sums to"):
+    with pytest.raises(InputError, match=r"transition_probs_: row 0 sums to"):
         set_model(np.array([0.5, 0.5]), np.array([[0.5, 0.6], [0.5, 0.5]]),
                   np.ones((2, 3))).score(X)
-    with pytest.raises(InputError, match=r"startprob_: expected entries summing to 1"):
+    with pytest.raises(InputError, match=r"initial_probs_: expected entries summing to 1"):
         set_model(np.array([0.5, 0.6]), np.eye(2), np.ones((2, 3))).score(X)
-    with pytest.raises(InputError, match=r"startprob_: expected shape \(2,\)"):
+    with pytest.raises(InputError, match=r"initial_probs_: expected shape \(2,\)"):
         set_model(np.ones(3) / 3, np.eye(2), np.ones((2, 3))).score(X)
-    with pytest.raises(InputError, match=r"transmat_: expected shape \(2, 2\)"):
+    with pytest.raises(InputError, match=r"transition_probs_: expected shape \(2, 2\)"):
         set_model(np.ones(2) / 2, np.eye(3), np.ones((2, 3))).score(X)
     with pytest.raises(InputError, match=r"rates_: expected a 2-D"):
         set_model(np.ones(2) / 2, np.eye(2), np.ones(3)).score(X)
     with pytest.raises(InputError, match=r"rates_: expected finite values >= 0"):
         set_model(np.ones(2) / 2, np.eye(2), -np.ones((2, 3))).score(X)
     m2 = PoissonHMM(3, init="given")
-    m2.startprob_, m2.transmat_, m2.rates_ = np.ones(3) / 3, np.eye(3), np.ones((3, 2))
+    m2.initial_probs_, m2.transition_probs_ = np.ones(3) / 3, np.eye(3)
+    m2.rates_ = np.ones((3, 2))
     with pytest.raises(InputError, match=r"init='given': rates_ has shape \(3, 2\), "
                                          r"expected \(3, 3\)"):
         m2.fit(X)

@@ -120,7 +120,8 @@ def fitted():
                                  mean_dwell_s=0.4, modulation=0.8, rng=3)
     b = bin_spikes(rec, bin_size=0.05)
     sf = analyse_states(b, n_states=3, latent_dims=2, rng=0)
-    rebinned = {"bin/2": bin_spikes(rec, bin_size=0.025), "bin*2": bin_spikes(rec, bin_size=0.1)}
+    rebinned = {"bin_halved": bin_spikes(rec, bin_size=0.025),
+                "bin_doubled": bin_spikes(rec, bin_size=0.1)}
     return b, sf, rebinned
 
 
@@ -128,22 +129,22 @@ def test_robustness_panel_on_a_three_state_recording(fitted):
     b, sf, rebinned = fitted
     panel = state_robustness(b, sf, rebinned=rebinned, thresholds=(0.6, 0.95), rng=1)
     names = [s.name for s in panel.settings]
-    assert names == ["chosen", "states-1", "states+1", "bin/2", "bin*2", "threshold-low",
-                     "threshold-high"]
+    assert names == ["chosen", "states_minus_1", "states_plus_1", "bin_halved", "bin_doubled",
+                     "threshold_low", "threshold_high"]
     by = {s.name: s for s in panel.settings}
     ch = by["chosen"]
     np.testing.assert_array_equal(ch.match, [0, 1, 2])
     assert ch.occupancy_tvd == 0 and ch.agreement == 1
     # clear states survive halving/doubling the bin and one extra state
-    for name in ("bin/2", "bin*2", "states+1"):
+    for name in ("bin_halved", "bin_doubled", "states_plus_1"):
         assert by[name].n_matched_similar == 3, name
         assert by[name].agreement > 0.85, name
-    assert by["states+1"].n_states == 4 and np.sum(by["states+1"].match < 0) == 1
-    assert by["states-1"].n_states == 2 and by["states-1"].n_matched_similar <= 2
+    assert by["states_plus_1"].n_states == 4 and np.sum(by["states_plus_1"].match < 0) == 1
+    assert by["states_minus_1"].n_states == 2 and by["states_minus_1"].n_matched_similar <= 2
     # a lower threshold assigns more, a higher one fewer bins (same model)
-    assert by["threshold-low"].unassigned_fraction <= ch.unassigned_fraction \
-        <= by["threshold-high"].unassigned_fraction
-    np.testing.assert_array_equal(by["threshold-high"].rates_hz, sf.rates_hz)
+    assert by["threshold_low"].unassigned_fraction <= ch.unassigned_fraction \
+        <= by["threshold_high"].unassigned_fraction
+    np.testing.assert_array_equal(by["threshold_high"].rates_hz, sf.rates_hz)
     h, rows = panel.table()
     assert len(rows) == 7 and h[0] == "setting"
     h, rows = panel.state_table()
@@ -157,6 +158,6 @@ def test_robustness_errors(fitted):
     b, sf, rebinned = fitted
     with pytest.raises(InputError, match=r"robustness.thresholds: expected numbers in \(0.5, 1\)"):
         state_robustness(b, sf, state_steps=(), thresholds=(1.0,))
-    other = rebinned["bin*2"].subset_trials(np.arange(10))
+    other = rebinned["bin_doubled"].subset_trials(np.arange(10))
     with pytest.raises(InputError, match="holds other trials"):
         state_robustness(b, sf, state_steps=(), rebinned={"x": other}, thresholds=())

@@ -90,8 +90,8 @@ def test_path_entropy_equals_bruteforce():
     # scipy.stats.poisson emissions; two sequences (entropies add)
     rng = np.random.default_rng(0)
     m = PoissonHMM(3)
-    m.startprob_ = np.array([0.5, 0.3, 0.2])
-    m.transmat_ = np.array([[0.8, 0.1, 0.1], [0.2, 0.7, 0.1], [0.0, 0.3, 0.7]])
+    m.initial_probs_ = np.array([0.5, 0.3, 0.2])
+    m.transition_probs_ = np.array([[0.8, 0.1, 0.1], [0.2, 0.7, 0.1], [0.0, 0.3, 0.7]])
     m.rates_ = rng.gamma(2, 1, size=(3, 3))
     seqs = [rng.poisson(1.5, size=(4, 3)), rng.poisson(1.5, size=(3, 3))]
     ll, H = _loglik_and_entropy(m, _CountData(seqs))
@@ -99,9 +99,9 @@ def test_path_entropy_equals_bruteforce():
     for x in seqs:
         joint = []
         for path in itertools.product(range(3), repeat=len(x)):
-            p = m.startprob_[path[0]]
+            p = m.initial_probs_[path[0]]
             for t in range(1, len(x)):
-                p *= m.transmat_[path[t - 1], path[t]]
+                p *= m.transition_probs_[path[t - 1], path[t]]
             for t, z in enumerate(path):
                 p *= np.prod(poisson.pmf(x[t], m.rates_[z]))
             joint.append(p)

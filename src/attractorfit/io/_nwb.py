@@ -21,6 +21,10 @@ __all__ = ["read_nwb", "write_nwb"]
 NAME_COLUMNS = ("unit_name", "name", "unit_id", "cluster_id")
 #: Trials-table columns NWB defines itself; a label column may not use these names.
 _RESERVED_TRIAL_COLUMNS = ("start_time", "stop_time", "tags", "timeseries", "id")
+#: Units-table columns NWB defines itself (with ``unit_name``, ours); a unit metadata
+#: column may not use these names when written.
+_RESERVED_UNIT_COLUMNS = ("spike_times", "obs_intervals", "electrodes", "electrode_group",
+                          "waveform_mean", "waveform_sd", "waveforms", "id", "unit_name")
 _EPOCH = datetime.datetime(1970, 1, 1, tzinfo=datetime.timezone.utc)
 _EXPECTED = "an NWB file (HDF5 written by pynwb or another NWB writer)"
 
@@ -99,7 +103,44 @@ def _read_units(units, name: str, unit_column, warnings: list):
                             "used the table ids as unit ids")
         else:
             ids = names.tolist()
-    return ids, trains
+    check_claimed_size(f"{name}: units table", (len(ids), max(len(units.colnames), 1)), 64,
+                       what=f"{len(ids)} units of {len(units.colnames)} columns")
+    info, skipped = _unit_columns(units, len(ids), exclude=(chosen, "spike_times"))
+    if skipped:
+        warnings.append(f"{name}: units column(s) {skipped} are not one number or text per "
+                        "unit; left out of the unit metadata")
+    return ids, trains, info
+
+
+def _unit_columns(units, n: int, *, exclude) -> tuple:
+    """One-value-per-unit columns of a units table (text or numbers) and those skipped.
+
+    Ragged columns (spike times, observation intervals, waveforms), table references
+    (electrodes) and multi-dimensional columns (mean waveforms) are skipped without a
+    word when NWB defines them, with a warning otherwise.
+    """
+    from hdmf.common.table import DynamicTableRegion, VectorIndex
+
+    info, skipped = {}, []
+    for col in units.colnames:
+        if col in exclude:
+            continue
+        column = units[col]
+        values = None
+        shape = getattr(getattr(column, "data", None), "shape", None)
+        if (not isinstance(column, (VectorIndex, DynamicTableRegion))
+                and shape is not None and tuple(shape) == (n,)):  # read only 1-D columns
+            values = np.asarray(column.data[:])
+            if values.dtype.kind in "OS":
+                values = _text(values.tolist())
+            elif values.dtype.kind not in "biuf":
+                values = None
+        if values is None:
+            if col not in _RESERVED_UNIT_COLUMNS:
+                skipped.append(col)
+            continue
+        info[col] = values
+    return info, skipped
 
 
 def _interval_columns(table, name: str, warnings: list) -> dict | None:
@@ -173,7 +214,9 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
     -------
     Recording
         Units in the order of their ids (numerical when all are integers), as every
-        reader returns them. Trials from the file's trials table with every
+        reader returns them; every units-table column holding one number or text per
+        unit (e.g. a single/multi-unit type, a site) in ``unit_info``. Trials from the
+        file's trials table with every
         one-value-per-trial column as a label; without a trials table, the epochs
         table (its tags joined by commas).
 
@@ -204,7 +247,7 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
         with library_errors(path, _EXPECTED):
             nwb = nwb_io.read()
             units = _find_units(nwb, name, warnings)
-            ids, trains = _read_units(units, name, unit_column, warnings)
+            ids, trains, unit_info = _read_units(units, name, unit_column, warnings)
             file_trials = None
             if nwb.trials is not None:
                 file_trials = _interval_columns(nwb.trials, name, warnings)
@@ -229,8 +272,10 @@ def read_nwb(path, *, unit_column: str | None = None, trials=None,
     order = {u: k for k, u in enumerate(ids)}
     ids = _natural_sort(ids) if len(set(ids)) == len(ids) else ids  # same order as others
     trains = [trains[order[u]] for u in ids]
+    rows = np.array([order[u] for u in ids], dtype=np.int64)
     rec = Recording(unit_ids=ids, spike_times=trains, trials=trials_table,
-                    metadata=metadata, provenance=provenance)
+                    metadata=metadata, provenance=provenance,
+                    unit_info={c: v[rows] for c, v in unit_info.items()})
     rec.metadata["source"] = name
     return finish(rec.validate(), warnings)
 
@@ -246,6 +291,9 @@ def _content_id(recording: Recording) -> str:
         for c in recording.trials:
             h.update(str(c).encode() + b"\0")
             h.update(np.asarray(recording.trials[c]).astype(str).tobytes())
+    for c, v in recording.unit_info.items():  # nothing added without unit metadata
+        h.update(b"unit column " + str(c).encode() + b"\0")
+        h.update(np.asarray(v).astype(str).tobytes())
     return h.hexdigest()[:32]
 
 
@@ -271,8 +319,11 @@ def _units_table(recording: Recording):
     index = VectorIndex(name="spike_times_index", data=ends, target=spikes)
     names = VectorData(name="unit_name", description="unit id",
                        data=[str(u) for u in recording.unit_ids])
+    info = [VectorData(name=c, description=f"unit metadata {c}",
+                       data=[_trial_value(x) for x in np.asarray(v).ravel()])
+            for c, v in recording.unit_info.items()]
     return Units(name="units", id=np.arange(recording.n_units),
-                 columns=[spikes, index, names], description="units")
+                 columns=[spikes, index, names, *info], description="units")
 
 
 def write_nwb(recording: Recording, path, *, session_description: str | None = None) -> None:
@@ -292,11 +343,13 @@ def write_nwb(recording: Recording, path, *, session_description: str | None = N
     InputError
         A trial label column named like an NWB trials column (start_time,
         stop_time, tags, timeseries, id), or a label column whose values are
-        neither numbers, booleans nor text.
+        neither numbers, booleans nor text; a unit metadata column named like an
+        NWB units column (spike_times, electrodes, waveforms...).
 
     Notes
     -----
-    Unit ids go to a ``unit_name`` column; label columns become trials-table columns.
+    Unit ids go to a ``unit_name`` column and ``unit_info`` columns to units-table
+    columns; label columns become trials-table columns.
     To keep files reproducible, the identifier is a hash of the content and the
     session start (also used as the file creation date) is
     ``metadata['session_start_time']`` or 1970-01-01T00:00:00Z when unknown.
@@ -314,6 +367,11 @@ def write_nwb(recording: Recording, path, *, session_description: str | None = N
             raise InputError(f"write_nwb: trial label column {c!r} has dtype "
                              f"{np.asarray(recording.trials[c]).dtype}; expected numbers, "
                              "booleans or text")
+    for c in recording.unit_info:
+        if c in _RESERVED_UNIT_COLUMNS:
+            raise InputError(f"write_nwb: unit metadata column {c!r} has a name the NWB "
+                             f"units table reserves ({', '.join(_RESERVED_UNIT_COLUMNS)}); "
+                             "rename it first")
     meta = recording.metadata
     start = _EPOCH
     if meta.get("session_start_time"):

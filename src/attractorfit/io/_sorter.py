@@ -160,7 +160,9 @@ def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
     Returns
     -------
     Recording
-        Unit ids are cluster ids; ``metadata['cluster_labels']`` maps id to label.
+        Unit ids are cluster ids; ``metadata['cluster_labels']`` maps id to label,
+        and the same labels (lower case, "" when a cluster has none) are the unit
+        metadata column ``group`` when the folder has label files.
 
     Raises
     ------
@@ -261,7 +263,9 @@ def read_sorter_folder(path, *, sampling_rate=None, good_only: bool = False,
     trials_table = resolve_trials(None, trials, source=name, time_unit=time_unit,
                                   trials_time_unit=trials_time_unit,
                                   provenance=provenance, warnings=warnings)
+    info = {"group": np.array([labels.get(str(c), "") for c in ids], dtype=str)} \
+        if labels else {}
     rec = Recording.from_arrays(times, clusters, trials=trials_table,
                                 unit_ids=[str(c) for c in ids], metadata=metadata,
-                                provenance=provenance, source=name)
+                                provenance=provenance, source=name, unit_info=info)
     return finish(rec, warnings)

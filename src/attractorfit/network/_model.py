@@ -13,8 +13,8 @@ References
 ----------
 .. [1] Mastrogiuseppe F, Ostojic S (2018) Linking connectivity, dynamics, and computations
    in low-rank recurrent neural networks. Neuron 99:609-623.
-.. [2] Boerlin M, Machens CK, Deneve S (2013) Predictive coding of dynamical variables in
-   balanced spiking networks. PLoS Computational Biology 9:e1003258.
+.. [2] Boerlin M et al. (2013) Predictive coding of dynamical variables in balanced
+   spiking networks. PLoS Computational Biology 9:e1003258.
 .. [3] Dayan P, Abbott LF (2001) Theoretical Neuroscience. MIT Press, chapter 5.
 """
 

@@ -189,8 +189,8 @@ class StateFit:
             "trial_index": np.asarray(self.trial_index, np.int64),
             "posterior_threshold": np.float64(self.posterior_threshold),
             "min_segment_s": np.float64(self.min_segment_s),
-            "hmm_startprob": np.asarray(m.startprob_, float),
-            "hmm_transmat": np.asarray(m.transmat_, float),
+            "hmm_initial_probs": np.asarray(m.initial_probs_, float),
+            "hmm_transition_probs": np.asarray(m.transition_probs_, float),
             "hmm_rates": np.asarray(m.rates_, float),
             "hmm_sticky": np.float64(m.sticky), "hmm_n_restarts": np.int64(m.n_restarts),
             "hmm_max_iter": np.int64(m.max_iter), "hmm_tol": np.float64(m.tol),
@@ -271,7 +271,9 @@ class StateFit:
         from attractorfit.states._hmm import PoissonHMM
         from attractorfit.states._select import StateCountChoice
 
-        def get(key):
+        def get(key, old_key=None):
+            if key not in d and old_key in d:   # files written before the key was renamed
+                key = old_key
             if key not in d:
                 raise InputError(f"state model arrays: missing {key!r}; expected the output "
                                  "of StateFit.to_arrays")
@@ -292,8 +294,8 @@ class StateFit:
                            n_restarts=int(get("hmm_n_restarts")),
                            max_iter=int(get("hmm_max_iter")), tol=float(get("hmm_tol")),
                            init=str(get("hmm_init")))
-        model.startprob_ = get("hmm_startprob").astype(float)
-        model.transmat_ = get("hmm_transmat").astype(float)
+        model.initial_probs_ = get("hmm_initial_probs", "hmm_startprob").astype(float)
+        model.transition_probs_ = get("hmm_transition_probs", "hmm_transmat").astype(float)
         model.rates_ = get("hmm_rates").astype(float)
         model.loglik_history_ = get("hmm_loglik_history").astype(float)
         model.objective_history_ = get("hmm_objective_history").astype(float)

@@ -95,12 +95,12 @@ class BinaryFeatureHMM(_CountHMMBase):
         w_ik; ``log rates_[j, i] = log_base_[i] + codes_[j] @ weights_[i]``.
     rates_ : ndarray (2^K, N)
         Expected count per bin of each unit at each vertex (floored at 1e-8).
-    feature_transmat_ : ndarray (K, 2, 2)
+    feature_transition_probs_ : ndarray (K, 2, 2)
         Two-state chain of each feature (state 0 is -1, state 1 is +1).
-    feature_startprob_ : ndarray (K, 2)
-    transmat_ : ndarray (2^K, 2^K)
+    feature_initial_probs_ : ndarray (K, 2)
+    transition_probs_ : ndarray (2^K, 2^K)
         Joint transition matrix, kron(A_0, ..., A_{K-1}).
-    startprob_ : ndarray (2^K,)
+    initial_probs_ : ndarray (2^K,)
         Joint start probabilities (product of the features').
     loglik_history_, n_iter_, converged_, restart_logliks_ :
         As for :class:`PoissonHMM`.
@@ -110,7 +110,7 @@ class BinaryFeatureHMM(_CountHMMBase):
     Number of free parameters: N (K + 1) weights and offsets, 2K transition and K
     start probabilities. ``score``, ``predict``, ``predict_proba`` and ``bic`` work on
     the joint chain exactly as in :class:`PoissonHMM`, so a free PoissonHMM given
-    ``startprob_``, ``transmat_`` and ``rates_`` scores the same.
+    ``initial_probs_``, ``transition_probs_`` and ``rates_`` scores the same.
 
     References
     ----------
@@ -186,10 +186,10 @@ class BinaryFeatureHMM(_CountHMMBase):
         self.log_base_ = best["theta"][:, 0].copy()
         self.weights_ = best["theta"][:, 1:].copy()
         self.rates_ = _cube_rates(codes, best["theta"])
-        self.feature_startprob_ = best["p"]
-        self.feature_transmat_ = best["A"]
-        self.startprob_ = _kron_all(list(best["p"]))
-        self.transmat_ = _kron_all(list(best["A"]))
+        self.feature_initial_probs_ = best["p"]
+        self.feature_transition_probs_ = best["A"]
+        self.initial_probs_ = _kron_all(list(best["p"]))
+        self.transition_probs_ = _kron_all(list(best["A"]))
         self.loglik_history_ = np.asarray(best["loglik"])
         self.n_iter_ = best["n_iter"]
         self.converged_ = best["converged"]

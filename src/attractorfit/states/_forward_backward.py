@@ -2,7 +2,7 @@
 
 All kernels take per-bin emission log-likelihoods ``log_b`` (T_total x S) for several
 independent sequences stacked along the rows, with ``offsets`` (n_seq + 1,) marking
-where each sequence starts; every sequence starts from ``startprob``.
+where each sequence starts; every sequence starts from ``initial_probs``.
 
 Scaling: each row of ``log_b`` is shifted by its maximum before exponentiation and the
 forward variables are renormalised at every step (the scaled recursions of [1]_), so no
@@ -59,7 +59,8 @@ def _scaled_emissions(log_b, t0, t1, b):
 
 
 @njit(cache=True, nogil=True)
-def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, start_sum):
+def forward_backward(log_b, offsets, initial_probs, transition_probs, posteriors, xi_sum,
+                     start_sum):
     """Scaled forward-backward over stacked sequences.
 
     Parameters
@@ -68,8 +69,8 @@ def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, st
         Emission log-likelihoods.
     offsets : int64 (n_seq + 1,)
         Row where each sequence starts; the last entry is T_total.
-    startprob : float64 (S,)
-    transmat : float64 (S, S)
+    initial_probs : float64 (S,)
+    transition_probs : float64 (S, S)
     posteriors : float64 (T_total, S), output
         Posterior state probabilities of every bin.
     xi_sum : float64 (S, S), output (overwritten)
@@ -103,7 +104,7 @@ def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, st
         # forward
         c = 0.0
         for s in range(S):
-            alpha[0, s] = startprob[s] * b[0, s]
+            alpha[0, s] = initial_probs[s] * b[0, s]
             c += alpha[0, s]
         if c <= 0.0:
             return -np.inf
@@ -115,7 +116,7 @@ def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, st
             for j in range(S):
                 acc = 0.0
                 for i in range(S):
-                    acc += alpha[t - 1, i] * transmat[i, j]
+                    acc += alpha[t - 1, i] * transition_probs[i, j]
                 acc *= b[t, j]
                 alpha[t, j] = acc
                 c += acc
@@ -139,7 +140,7 @@ def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, st
                 acc = 0.0
                 ai = alpha[t, i]
                 for j in range(S):
-                    w = transmat[i, j] * tmp[j]
+                    w = transition_probs[i, j] * tmp[j]
                     acc += w
                     xi_sum[i, j] += ai * w
                 beta_new[i] = acc
@@ -156,7 +157,7 @@ def forward_backward(log_b, offsets, startprob, transmat, posteriors, xi_sum, st
 
 
 @njit(cache=True, nogil=True)
-def forward_loglik(log_b, offsets, startprob, transmat):
+def forward_loglik(log_b, offsets, initial_probs, transition_probs):
     """Total log-likelihood of stacked sequences by the scaled forward pass only."""
     S = log_b.shape[1]
     n_seq = offsets.shape[0] - 1
@@ -178,13 +179,13 @@ def forward_loglik(log_b, offsets, startprob, transmat):
             c = 0.0
             if t == t0:
                 for s in range(S):
-                    new[s] = startprob[s] * b[s]
+                    new[s] = initial_probs[s] * b[s]
                     c += new[s]
             else:
                 for j in range(S):
                     acc = 0.0
                     for i in range(S):
-                        acc += alpha[i] * transmat[i, j]
+                        acc += alpha[i] * transition_probs[i, j]
                     new[j] = acc * b[j]
                     c += new[j]
             if c <= 0.0:
@@ -196,7 +197,7 @@ def forward_loglik(log_b, offsets, startprob, transmat):
 
 
 @njit(cache=True, nogil=True)
-def viterbi(log_b, offsets, log_startprob, log_transmat, path):
+def viterbi(log_b, offsets, log_initial_probs, log_transition_probs, path):
     """Most probable state path of each stacked sequence (written into ``path``).
 
     Returns the sum over sequences of the log joint probability of the best paths.
@@ -216,13 +217,13 @@ def viterbi(log_b, offsets, log_startprob, log_transmat, path):
         t0 = offsets[q]
         T = offsets[q + 1] - t0
         for s in range(S):
-            delta[s] = log_startprob[s] + log_b[t0, s]
+            delta[s] = log_initial_probs[s] + log_b[t0, s]
         for t in range(1, T):
             for j in range(S):
                 best = -np.inf
                 arg = 0
                 for i in range(S):
-                    v = delta[i] + log_transmat[i, j]
+                    v = delta[i] + log_transition_probs[i, j]
                     if v > best:
                         best = v
                         arg = i

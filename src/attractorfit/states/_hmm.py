@@ -2,8 +2,8 @@
 
 Each bin's count vector x_t (N units) is Poisson given the hidden state z_t, with
 expected counts ``rates_[z_t]`` (counts per bin; divide by the bin size for Hz), and the
-states follow a Markov chain with ``startprob_`` and ``transmat_`` [1]_. Trials are
-independent sequences, each starting from ``startprob_``. Parameters are fitted by EM
+states follow a Markov chain with ``initial_probs_`` and ``transition_probs_`` [1]_. Trials are
+independent sequences, each starting from ``initial_probs_``. Parameters are fitted by EM
 (Baum-Welch) with several restarts; an optional sticky Dirichlet prior on the
 self-transitions favours persistent states [2]_, [3]_.
 
@@ -14,9 +14,9 @@ References
 .. [2] Fox, E. B., Sudderth, E. B., Jordan, M. I. & Willsky, A. S. (2011). A sticky
    HDP-HMM with application to speaker diarization. Annals of Applied Statistics
    5:1020-1056.
-.. [3] Li and La Camera (2025). PLOS ONE 20:e0325979 (sticky prior and BIC for
-   choosing the number of states of spike-count HMMs; cited from the project's issue,
-   title not verified).
+.. [3] Li T, La Camera G (2025) A sticky Poisson hidden Markov model for solving the
+   problem of over-segmentation and rapid state switching in cortical datasets. PLOS ONE
+   20(7): e0325979.
 """
 
 from __future__ import annotations
@@ -201,10 +201,13 @@ def _log_emissions(data: _CountData, rates: np.ndarray) -> np.ndarray:
 
 
 class _CountHMMBase(BaseEstimator):
-    """Scoring and decoding shared by the count HMMs (rates_, startprob_, transmat_)."""
+    """Scoring and decoding shared by the count HMMs.
+
+    Fitted attributes: ``rates_``, ``initial_probs_``, ``transition_probs_``.
+    """
 
     #: names of the (start, transition, rates) attributes of the chain that is scored
-    _chain_attrs = ("startprob_", "transmat_", "rates_")
+    _chain_attrs = ("initial_probs_", "transition_probs_", "rates_")
 
     def _joint_params(self):
         check_is_fitted(self, list(self._chain_attrs))
@@ -215,20 +218,20 @@ class _CountHMMBase(BaseEstimator):
                              f"{rates.shape}")
         S = rates.shape[0]
         if start.shape != (S,):
-            raise InputError(f"startprob_: expected shape ({S},) to match rates_, got "
+            raise InputError(f"initial_probs_: expected shape ({S},) to match rates_, got "
                              f"{start.shape}")
         if trans.shape != (S, S):
-            raise InputError(f"transmat_: expected shape ({S}, {S}) to match rates_, got "
+            raise InputError(f"transition_probs_: expected shape ({S}, {S}) to match rates_, got "
                              f"{trans.shape}")
         for name, arr in zip(self._chain_attrs, (start, trans, rates)):
             if not np.all(np.isfinite(arr)) or np.any(arr < 0):
                 raise InputError(f"{name}: expected finite values >= 0")
         if abs(start.sum() - 1.0) > 1e-6:
-            raise InputError(f"startprob_: expected entries summing to 1, got {start.sum()!r}")
+            raise InputError(f"initial_probs_: expected entries summing to 1, got {start.sum()!r}")
         bad = np.abs(trans.sum(axis=1) - 1.0) > 1e-6
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
-            raise InputError(f"transmat_: row {i} sums to {trans[i].sum()!r}, expected 1")
+            raise InputError(f"transition_probs_: row {i} sums to {trans[i].sum()!r}, expected 1")
         return start, trans, rates
 
     def _data(self, X, name="X"):
@@ -248,7 +251,7 @@ class _CountHMMBase(BaseEstimator):
         ----------
         X : array (T x N) of counts, or a list of per-trial arrays
             A list is scored as independent sequences, each starting from
-            ``startprob_``; the result is the sum over sequences.
+            ``initial_probs_``; the result is the sum over sequences.
 
         Returns
         -------
@@ -345,17 +348,17 @@ class PoissonHMM(_CountHMMBase):
         units per bin) in one iteration.
     init : {"kmeans", "random", "given"}
         Starting point of restart 0: k-means (default), random centres, or the
-        current ``startprob_``, ``transmat_`` and ``rates_`` (set by hand or from a
+        current ``initial_probs_``, ``transition_probs_`` and ``rates_`` (set by hand or from a
         previous fit). Restarts beyond the first follow the scheme above.
     rng : None, int or numpy Generator
         Seed for k-means and random restarts.
 
     Attributes
     ----------
-    startprob_ : ndarray (S,)
+    initial_probs_ : ndarray (S,)
         Probability of each state in the first bin of a trial.
-    transmat_ : ndarray (S, S)
-        transmat_[i, j] = P(z_{t+1} = j | z_t = i).
+    transition_probs_ : ndarray (S, S)
+        transition_probs_[i, j] = P(z_{t+1} = j | z_t = i).
     rates_ : ndarray (S, N)
         Expected count per bin of each unit in each state (divide by the bin size
         for Hz). Floored at ``RATE_FLOOR`` = 1e-8.
@@ -363,7 +366,7 @@ class PoissonHMM(_CountHMMBase):
         Log-likelihood of the training data at each EM iteration of the kept run
         (the first entry is the starting point).
     objective_history_ : ndarray
-        Log-likelihood plus log prior (``kappa * sum_i log transmat_[i, i]``); equals
+        Log-likelihood plus log prior (``kappa * sum_i log transition_probs_[i, i]``); equals
         ``loglik_history_`` when ``sticky`` = 0. EM never decreases it.
     n_iter_ : int
         Number of EM updates (M-steps) in the kept run.
@@ -388,7 +391,7 @@ class PoissonHMM(_CountHMMBase):
 
     The number of free parameters is (S - 1) + S (S - 1) + S N.
 
-    ``startprob_``, ``transmat_`` and ``rates_`` may be set by hand (e.g. to evaluate
+    ``initial_probs_``, ``transition_probs_`` and ``rates_`` may be set by hand (e.g. to evaluate
     given parameters); ``score``, ``predict``, ``predict_proba`` and ``bic`` check
     their shapes and that the probabilities sum to 1.
 
@@ -449,7 +452,7 @@ class PoissonHMM(_CountHMMBase):
         Parameters
         ----------
         X : array (T x N) of counts, list of per-trial arrays, or BinnedCounts
-            Trials are independent sequences, each starting from ``startprob_``.
+            Trials are independent sequences, each starting from ``initial_probs_``.
         y : ignored
 
         Returns
@@ -493,8 +496,8 @@ class PoissonHMM(_CountHMMBase):
             more["n_iter"] += best["n_iter"]
             best = more
             objectives[int(np.argmax(objectives))] = best["objective"][-1]
-        self.startprob_ = best["start"]
-        self.transmat_ = best["trans"]
+        self.initial_probs_ = best["start"]
+        self.transition_probs_ = best["trans"]
         self.rates_ = best["rates"]
         self.loglik_history_ = np.asarray(best["loglik"])
         self.objective_history_ = np.asarray(best["objective"])

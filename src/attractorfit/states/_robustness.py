@@ -107,8 +107,9 @@ class RobustnessSetting:
     Attributes
     ----------
     name : str
-        ``chosen``, ``states-1``, ``states+1``, ``bin/2``, ``bin*2``,
-        ``threshold-low`` or ``threshold-high`` (``bin x<factor>`` for other factors).
+        ``chosen``, ``states_minus_1``, ``states_plus_1`` (``states_plus_2``...),
+        ``bin_halved``, ``bin_doubled`` (``bin_times_1p5`` for other factors),
+        ``threshold_low`` or ``threshold_high``: plain names, usable as JSON keys.
     n_states : int
     bin_size : float
         Seconds.
@@ -288,12 +289,12 @@ def state_robustness(binned, state_fit, *, state_steps=(-1, 1), rebinned=None,
         are skipped).
     rebinned : dict of str to BinnedCounts, optional
         The same trials binned at other bin sizes, keyed by the setting's name (e.g.
-        ``{"bin/2": ..., "bin*2": ...}``); each is refitted with the chosen number of
+        ``{"bin_halved": ..., "bin_doubled": ...}``); each is refitted with the chosen number of
         states. Binning stays with the caller (``pipeline.run_states``).
     thresholds : sequence of float
         Posterior thresholds in (0.5, 1) to decode the chosen model with again (no
-        refit). The lower one is named ``threshold-low``, a higher one
-        ``threshold-high``.
+        refit). The lower one is named ``threshold_low``, a higher one
+        ``threshold_high``.
     n_restarts : int
         EM restarts of every refit.
     rng : int or Generator, optional
@@ -328,7 +329,8 @@ def state_robustness(binned, state_fit, *, state_steps=(-1, 1), rebinned=None,
     settings = [_setting("chosen", sf, sf.decoding, rates_hz=sf.rates_hz, cube_r2=sf.cube_r2,
                          bin_size=sf.bin_size, threshold=sf.posterior_threshold,
                          unit_cols=all_cols, centre=centre)]
-    jobs = [(f"states{d:+d}", binned, s0 + int(d)) for d in state_steps if s0 + int(d) >= 1]
+    jobs = [(f"states_{'minus' if d < 0 else 'plus'}_{abs(int(d))}", binned, s0 + int(d))
+            for d in state_steps if s0 + int(d) >= 1]
     jobs += [(name, b, s0) for name, b in (rebinned or {}).items()]
     seeds = np.random.SeedSequence(int(rng.integers(2 ** 63 - 1))).spawn(len(jobs))
     for (name, b, s), seed in zip(jobs, seeds):
@@ -358,8 +360,8 @@ def state_robustness(binned, state_fit, *, state_steps=(-1, 1), rebinned=None,
         t = float(t)
         if not 0.5 < t < 1.0:
             raise InputError(f"robustness.thresholds: expected numbers in (0.5, 1), got {t!r}")
-        name = ("threshold-low" if t < sf.posterior_threshold else
-                "threshold-high" if t > sf.posterior_threshold else "threshold-same")
+        name = ("threshold_low" if t < sf.posterior_threshold else
+                "threshold_high" if t > sf.posterior_threshold else "threshold_same")
         dec = _decode(sf.model, binned, n_states=s0, threshold=t,
                       min_segment_s=sf.min_segment_s, label_to_state=None)
         settings.append(_setting(name, sf, dec, rates_hz=sf.rates_hz, cube_r2=sf.cube_r2,

@@ -61,8 +61,9 @@ References
    Analysis and Machine Intelligence 22:719-725.
 .. [3] Hastie, T., Tibshirani, R. & Friedman, J. (2009). The Elements of Statistical
    Learning, 2nd ed., Springer, section 7.10 (one-standard-error rule).
-.. [4] Li and La Camera (2025). PLOS ONE 20:e0325979 (cited from the project's
-   issue, title not verified).
+.. [4] Li T, La Camera G (2025) A sticky Poisson hidden Markov model for solving the
+   problem of over-segmentation and rapid state switching in cortical datasets. PLOS ONE
+   20(7): e0325979.
 """
 
 from __future__ import annotations
