@@ -204,13 +204,15 @@ PARAMETERS: dict[str, dict[str, Param]] = {
         "dt": Param(1e-4, "simulation step, seconds (the transfer function is evaluated at "
                           "this step)", _num(1e-6, 1e-3), "a number of seconds from 1e-6 "
                                                               "to 1e-3"),
-        "stability": Param("spectral", "what the optimized rule's stability margins bound: "
-                                       "'spectral' (the eigenvalues of each vertex's "
-                                       "Jacobian: the tightest decoder, the better occupancy "
-                                       "in our benchmark, but the solver's answer can jump "
-                                       "between local optima) or 'symmetric' (their "
-                                       "symmetric part: a convex problem with a unique "
-                                       "decoder and more readout noise)",
+        "stability": Param("symmetric", "what the optimized rule's stability margins "
+                                        "bound: 'symmetric' (the symmetric part of each "
+                                        "vertex's Jacobian: a convex problem with a unique "
+                                        "decoder, so the same results on every machine; "
+                                        "more readout noise) or 'spectral' (its "
+                                        "eigenvalues: the tightest decoder and the better "
+                                        "occupancy in our benchmark, but the solver's "
+                                        "answer moves with rounding, so another CPU or "
+                                        "BLAS kernel gives another network)",
                            _choice("spectral", "symmetric"), "one of spectral, symmetric"),
         "field_steps": Param(0, "steps calibrating an occupancy field (0: none; 8 is a "
                                 "good budget): a constant input along the latent axes, "

@@ -146,7 +146,7 @@ class FitOptions:
     tau_s_range: tuple = (0.01, 0.3)
     dt: float = 1e-4
     cue_field: bool = False
-    stability: str = "spectral"
+    stability: str = "symmetric"
     field_steps: int = 0
 
     @classmethod
@@ -575,7 +575,7 @@ def centred_rate_r2(target, model) -> float:
 
 # ============================================================================ decoder
 def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0.05,
-                weights=None, init=None, stability="spectral"):
+                weights=None, init=None, stability="symmetric"):
     """Decoder by ``rule`` so that ``tau_s D r^mu = x^mu`` at every state (DecoderResult).
 
     Parameters
@@ -598,9 +598,11 @@ def fit_decoder(rule, model_rates_hz, codes, encoder, slopes, *, tau_s, margin=0
         :func:`~attractorfit.network.decoder_optimized`). ``"symmetric"`` is a convex
         problem with one optimum, so the decoder moves continuously with the weights the
         occupancy rounds adjust (with ``"spectral"`` a relative change of 1e-6 in the
-        weights moved the decoder by 10% on an 8-state recording); ``"spectral"``
-        (default) gave the better occupancy in ``bench_fit.py`` (median systematic TVD
-        0.090 against 0.117 over 12 recordings, better in 9 of 12).
+        weights moved the decoder by 10% on an 8-state recording) and the result is
+        the same on every machine (default; DESIGN Amendment 10). ``"spectral"`` gave the
+        better occupancy in ``bench_fit.py`` (median systematic TVD 0.090 against 0.117
+        over 12 recordings, better in 9 of 12), but its solver stops at points that move
+        with rounding: another OpenBLAS kernel gave another decoder and other results.
 
     Returns
     -------
@@ -1736,7 +1738,7 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
                 condition=None, train_trials=None, n_calibration_sims=None, max_evaluations=14,
                 dwell_tol=0.05, margin=0.05, depth_iterations=3, occupancy_tol=0.03,
                 cue_field=False, cue_evaluations=CUE_EVALUATIONS,
-                stability="spectral", field_steps=0, rng=None,
+                stability="symmetric", field_steps=0, rng=None,
                 progress=False) -> NetworkFit:
     """Fit a low-rank LIF network whose attractors sit at the data's states.
 
@@ -1823,10 +1825,11 @@ def fit_network(binned, state_fit, *, rule="pseudoinverse", hypercube=False, ext
     cue_evaluations : int
         Calibration simulations allowed for the cue field (beyond ``max_evaluations``).
     stability : {"spectral", "symmetric"}
-        Optimized rule: the margins bound the eigenvalues of each vertex's Jacobian
-        (default: the tightest decoder, but a non-convex problem whose solution can jump
-        between local optima) or its symmetric part (a convex problem with a unique
-        decoder and more readout noise). See :func:`fit_decoder`.
+        Optimized rule: the margins bound the symmetric part of each vertex's Jacobian
+        (``"symmetric"``, default: a convex problem with a unique decoder, the same on
+        every machine, at the price of more readout noise) or its eigenvalues
+        (``"spectral"``: the tightest decoder, but a non-convex problem whose solution
+        moves with rounding). See :func:`fit_decoder`.
     field_steps : int
         Steps of the occupancy field (0, the default: none; 8 is a good budget): a
         constant latent input ``h`` (K values) that enters every neuron as

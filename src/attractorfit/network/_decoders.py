@@ -285,7 +285,7 @@ def pseudoinverse_matrix(r, x, *, tau_s, scale=1.0, rcond=1e-10):
 @single_threaded
 def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin=0.2,
                       pattern_weights=None, weight_floor=1e-3, rcond=1e-10, max_iter=300,
-                      max_slsqp=600, init=None, stability="spectral"):
+                      max_slsqp=600, init=None, stability="symmetric"):
     """Minimum readout-noise decoder with exact fixed points and stability margins.
 
     Minimises ``sum_mu sum_{k,j} D[k, j]^2 r_j^mu`` (the predicted readout shot-noise
@@ -335,8 +335,9 @@ def decoder_optimized(rates, codes, *, tau_s, encoder, slopes, scale=1.0, margin
         Iterations of SLSQP.
     max_slsqp : int
         Largest number of free variables handed to SLSQP (its cost grows as the cube).
-    stability : {"spectral", "symmetric"}
-        What the margin constrains. ``"spectral"``: the largest real part of the
+    stability : {"symmetric", "spectral"}
+        What the margin constrains (default ``"symmetric"``, the one with a unique
+        answer on every machine). ``"spectral"``: the largest real part of the
         eigenvalues of every ``J_mu`` (the margin itself; a non-convex constraint, so the
         solver's answer can depend on where it starts). ``"symmetric"``: the largest
         eigenvalue of the symmetric part ``(J_mu + J_mu^T) / 2`` (the numerical
