@@ -69,3 +69,21 @@ def test_the_input_is_left_unchanged(slice_run):
     code, out = slice_run
     recorded = json.loads((out / "input.json").read_text())
     assert any(f.get("sha256") == digest for f in recorded["files"])
+
+
+def test_single_units_only_by_the_units_table(tmp_path, capsys):
+    # a quality filter on the NWB units table's own column (SU/MU), then states and report
+    (tmp_path / "real.toml").write_text(CONFIG)
+    out = tmp_path / "su"
+    code = main(["states", str(SLICE), "--config", str(tmp_path / "real.toml"), "--out",
+                 str(out), "--units", "unit_type=SU", "--no-test", "--quiet"])
+    assert code == 0, capsys.readouterr().err
+    summary = json.loads((out / "summary.json").read_text())
+    left = summary["recording"]["units_left_out"]
+    assert "selection" in json.dumps(left)
+    assert (out / "report.html").exists()
+    from attractorfit.io import load
+
+    rec = load(SLICE)
+    su = {u for u, t in zip(rec.unit_ids, rec.unit_info["unit_type"]) if t == "SU"}
+    assert set(summary["analysis"]["unit_ids"]) <= su
